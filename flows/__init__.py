@@ -1,0 +1,1 @@
+"""Wiring: stages mapped over chunks on Dask, the command line."""

@@ -1,0 +1,142 @@
+"""The survey config: one typed object, validated when it is loaded.
+
+The model is pure (no file I/O): ``descatter.storage.config_file`` reads and
+writes it as TOML. Kernels never receive it; flows pass them plain numbers.
+
+Every field carries a description and a unit, which ``descatter config init``
+turns into a commented template, so the template always lists every key.
+"""
+
+from __future__ import annotations
+
+from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+
+
+def _unit(unit: str) -> dict:
+    return {"unit": unit}
+
+
+class _Section(BaseModel):
+    model_config = ConfigDict(extra="forbid", validate_assignment=True, frozen=False)
+
+
+# Default trace-header byte positions: SEG-Y rev 1 (2002), table 2
+# (1-based byte numbers). The width of each field is fixed by the standard.
+HEADER_WIDTHS: dict[str, int] = {
+    "field_record": 4,
+    "channel": 4,
+    "energy_source_point": 4,
+    "offset": 4,
+    "receiver_elevation": 4,
+    "source_elevation": 4,
+    "elevation_scalar": 2,
+    "coordinate_scalar": 2,
+    "source_x": 4,
+    "source_y": 4,
+    "receiver_x": 4,
+    "receiver_y": 4,
+    "coordinate_units": 2,
+    "delay_ms": 2,
+    "n_samples": 2,
+    "interval_us": 2,
+}
+
+
+class HeaderPositions(_Section):
+    """1-based byte position of each decoded trace-header field."""
+
+    field_record: int = Field(9, description="field record number", json_schema_extra=_unit("byte"))
+    channel: int = Field(13, description="trace number within the field record", json_schema_extra=_unit("byte"))
+    energy_source_point: int = Field(17, description="energy source point number", json_schema_extra=_unit("byte"))
+    offset: int = Field(37, description="source-receiver offset", json_schema_extra=_unit("byte"))
+    receiver_elevation: int = Field(41, description="receiver group elevation", json_schema_extra=_unit("byte"))
+    source_elevation: int = Field(45, description="surface elevation at source", json_schema_extra=_unit("byte"))
+    elevation_scalar: int = Field(69, description="scalar applied to elevations", json_schema_extra=_unit("byte"))
+    coordinate_scalar: int = Field(71, description="scalar applied to coordinates", json_schema_extra=_unit("byte"))
+    source_x: int = Field(73, description="source coordinate X", json_schema_extra=_unit("byte"))
+    source_y: int = Field(77, description="source coordinate Y", json_schema_extra=_unit("byte"))
+    receiver_x: int = Field(81, description="group coordinate X", json_schema_extra=_unit("byte"))
+    receiver_y: int = Field(85, description="group coordinate Y", json_schema_extra=_unit("byte"))
+    coordinate_units: int = Field(89, description="coordinate units (1 length, 2 arc seconds, 3 degrees, 4 DMS)", json_schema_extra=_unit("byte"))
+    delay_ms: int = Field(109, description="delay recording time", json_schema_extra=_unit("byte"))
+    n_samples: int = Field(115, description="number of samples in this trace", json_schema_extra=_unit("byte"))
+    interval_us: int = Field(117, description="sample interval of this trace", json_schema_extra=_unit("byte"))
+
+    @model_validator(mode="after")
+    def _inside_header(self) -> "HeaderPositions":
+        for name, width in HEADER_WIDTHS.items():
+            pos = getattr(self, name)
+            if not 1 <= pos <= 241 - width:
+                raise ValueError(
+                    f"ingest.headers.{name} = {pos}: a {width}-byte field must start "
+                    f"between byte 1 and {241 - width} of the 240-byte trace header"
+                )
+        return self
+
+    def layout(self) -> dict[str, tuple[int, int]]:
+        """``{field: (1-based byte, width)}`` for every decoded field."""
+        return {name: (getattr(self, name), width) for name, width in HEADER_WIDTHS.items()}
+
+
+class IngestConfig(_Section):
+    """How SEG-Y swaths become arrays in the store."""
+
+    chunk_traces: int = Field(
+        1000, ge=16, le=1_000_000,
+        description="traces per chunk of every per-trace array",
+        json_schema_extra=_unit("traces"),
+    )
+    compression_level: int = Field(
+        1, ge=0, le=9, description="blosc lz4 level for trace samples (0 stores raw)",
+        json_schema_extra=_unit("level"),
+    )
+    headers: HeaderPositions = Field(default_factory=HeaderPositions, description="trace-header byte positions")
+
+
+class AnalysisConfig(_Section):
+    """The wave mode the estimation looks at: moveout, window and band."""
+
+    velocity: list[tuple[float, float]] = Field(
+        default_factory=lambda: [(0.0, 1800.0), (2.0, 3000.0)],
+        description="RMS velocity function for NMO as [t0, vrms] pairs",
+        json_schema_extra=_unit("[s, m/s]"),
+    )
+    window_start_s: float = Field(0.2, ge=0.0, description="analysis window start (after NMO)", json_schema_extra=_unit("s"))
+    window_end_s: float = Field(1.2, gt=0.0, description="analysis window end (after NMO)", json_schema_extra=_unit("s"))
+    band_hz: tuple[float, float] = Field((8.0, 60.0), description="frequency band of the estimation", json_schema_extra=_unit("Hz"))
+    near_surface_velocity_mps: float = Field(
+        200.0, gt=0.0, description="velocity of the scattering layer, for spacing checks",
+        json_schema_extra=_unit("m/s"),
+    )
+
+    @field_validator("velocity")
+    @classmethod
+    def _increasing(cls, value: list[tuple[float, float]]) -> list[tuple[float, float]]:
+        if not value:
+            raise ValueError("analysis.velocity needs at least one [t0, vrms] pair")
+        times = [t for t, _ in value]
+        if any(b <= a for a, b in zip(times, times[1:])):
+            raise ValueError(f"analysis.velocity t0 values must increase, got {times}")
+        if any(v <= 0 for _, v in value):
+            raise ValueError("analysis.velocity vrms values must be positive")
+        return value
+
+    @model_validator(mode="after")
+    def _ordered(self) -> "AnalysisConfig":
+        if self.window_end_s <= self.window_start_s:
+            raise ValueError(
+                f"analysis.window_end_s = {self.window_end_s} must exceed "
+                f"window_start_s = {self.window_start_s}"
+            )
+        lo, hi = self.band_hz
+        if not 0 <= lo < hi:
+            raise ValueError(f"analysis.band_hz = {list(self.band_hz)}: expected 0 <= low < high")
+        return self
+
+
+class SurveyConfig(_Section):
+    """Everything a survey run can be told. Sections mirror the stages."""
+
+    ingest: IngestConfig = Field(default_factory=IngestConfig, description="SEG-Y ingest")
+    analysis: AnalysisConfig = Field(default_factory=AnalysisConfig, description="analysis window and band")
+
