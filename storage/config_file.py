@@ -1,0 +1,114 @@
+"""Survey config files: TOML on disk <-> the typed :class:`SurveyConfig`.
+
+``load_config`` validates and names the key, the value got and what was
+expected; ``config_template`` writes every key with its default, unit and
+meaning as a commented template; ``dump_config`` writes an effective config
+that ``load_config`` reads back to an equal object.
+"""
+
+from __future__ import annotations
+
+import math
+import tomllib
+from pathlib import Path
+from typing import Any
+
+from pydantic import BaseModel, ValidationError
+
+from descatter.tasks.config import SurveyConfig
+from descatter.tasks.errors import ConfigError, InputNotFoundError
+
+
+def _explain(exc: ValidationError, source: str) -> str:
+    lines = [f"{source}: invalid survey config"]
+    for err in exc.errors():
+        key = ".".join(str(p) for p in err["loc"]) or "(top level)"
+        if err["type"] == "extra_forbidden":
+            lines.append(f"  - {key}: unknown key (run 'descatter config init' to see every key)")
+            continue
+        got = err.get("input")
+        got_txt = "" if isinstance(got, dict) else f" (got {got!r})"
+        lines.append(f"  - {key}: {err['msg']}{got_txt}")
+    return "\n".join(lines)
+
+
+def parse_config(document: dict[str, Any], *, source: str = "config") -> SurveyConfig:
+    """Validate a config mapping; :class:`ConfigError` lists every bad key."""
+    try:
+        return SurveyConfig.model_validate(document)
+    except ValidationError as exc:
+        raise ConfigError(_explain(exc, source)) from None
+
+
+def load_config(path: str | Path | None) -> SurveyConfig:
+    """Read and validate a TOML survey config; ``None`` gives the defaults."""
+    if path is None:
+        return SurveyConfig()
+    path = Path(path)
+    if not path.is_file():
+        raise InputNotFoundError(f"{path}: no such config file (write one with 'descatter config init {path}')")
+    try:
+        document = tomllib.loads(path.read_text())
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"{path}: not valid TOML ({exc})") from None
+    return parse_config(document, source=str(path))
+
+
+# -- writing -------------------------------------------------------------
+
+def _toml_value(value: Any) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, int):
+        return str(value)
+    if isinstance(value, float):
+        if math.isinf(value) or math.isnan(value):
+            raise ConfigError(f"cannot write {value!r} to TOML")
+        return repr(value)
+    if isinstance(value, str):
+        return '"' + value.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    if isinstance(value, BaseModel):
+        value = value.model_dump()
+    if isinstance(value, dict):
+        return "{ " + ", ".join(f"{k} = {_toml_value(v)}" for k, v in value.items()) + " }"
+    if isinstance(value, (list, tuple)):
+        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
+    if value is None:
+        raise ConfigError("TOML has no null: leave the key out instead")
+    raise ConfigError(f"cannot write {type(value).__name__} to TOML")
+
+
+def _walk(model: BaseModel, prefix: str, out: list[str], *, comments: bool) -> None:
+    scalars, sections = [], []
+    for name, field in type(model).model_fields.items():
+        value = getattr(model, name)
+        (sections if isinstance(value, BaseModel) else scalars).append((name, field, value))
+    if prefix and scalars:
+        out.append(f"\n[{prefix}]")
+    for name, field, value in scalars:
+        if comments:
+            unit = (field.json_schema_extra or {}).get("unit", "") if isinstance(field.json_schema_extra, dict) else ""
+            out.append(f"# {field.description or name}" + (f" [{unit}]" if unit else ""))
+        out.append(f"{name} = {_toml_value(value)}")
+    for name, field, value in sections:
+        sub = f"{prefix}.{name}" if prefix else name
+        if comments:
+            out.append(f"\n# --- {sub}: {field.description or name}")
+        _walk(value, sub, out, comments=comments)
+
+
+def config_template() -> str:
+    """Every key with its default, unit and meaning, as a commented TOML file."""
+    out = [
+        "# descatter survey config. Every key is shown with its default;",
+        "# delete what you do not change. Units are given in brackets.",
+    ]
+    _walk(SurveyConfig(), "", out, comments=True)
+    return "\n".join(out) + "\n"
+
+
+def dump_config(config: SurveyConfig) -> str:
+    """The config as TOML, without comments; ``load`` of it gives ``config`` back."""
+    out: list[str] = []
+    _walk(config, "", out, comments=False)
+    return "\n".join(out).lstrip("\n") + "\n"

@@ -1,0 +1,331 @@
+"""The survey store: a zarr v3 hierarchy with one group per swath.
+
+Layout (all names are ours; any zarr v3 client can read them)::
+
+    <store>/zarr.json                    root group; attrs: format, version,
+                                         sampling, units, ingest config
+    <store>/manifest.json                the commit record: swaths in order
+    <store>/swaths/<name>/traces         float32 [n, n_samples]
+    <store>/swaths/<name>/trace_headers  uint8 [n, 240], raw, file byte order
+    <store>/swaths/<name>/headers/<f>    int32 or float64 [n], decoded fields
+    <store>/checkpoints/...              done-flags (see checkpoints.py)
+    <store>/runlog.jsonl, lock.json      run log and writer lock
+
+Commit protocol: a swath's arrays are written first, under its group; the
+swath exists for readers only once the single writer has rewritten
+``manifest.json`` atomically with it. A group not named in the manifest is
+staging (a running or killed ingest) and readers never look at it. Neither
+consolidated metadata, array attributes nor chunk existence is used as
+commit state (zarr skips all-fill chunks, and attributes lose concurrent
+updates).
+"""
+
+from __future__ import annotations
+
+import base64
+import logging
+import shutil
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Iterator
+
+import numpy as np
+import zarr
+from zarr.codecs import BloscCodec
+
+from descatter.storage.atomic import read_json, write_json_atomic
+from descatter.tasks.errors import InputNotFoundError, StoreFormatError, SwathConflictError
+
+log = logging.getLogger(__name__)
+
+FORMAT_NAME = "descatter-survey"
+FORMAT_VERSION = 1
+MANIFEST_NAME = "manifest.json"
+MANIFEST_FORMAT = "descatter-manifest"
+
+SWATHS = "swaths"
+
+# Header bytes are kept raw; they compress well with zstd and are read rarely.
+_HEADER_CODEC = BloscCodec(cname="zstd", clevel=3, shuffle="noshuffle")
+
+
+def _sample_codec(level: int) -> tuple:
+    # blosc lz4 + shuffle: about 1.14x on band-limited float32 at > 1 GB/s
+    # encode (measured, DESIGN section 6); level 0 stores raw samples.
+    if level <= 0:
+        return ()
+    return (BloscCodec(cname="lz4", clevel=level, shuffle="shuffle"),)
+
+
+def _b64(data: bytes) -> str:
+    return base64.b64encode(data).decode("ascii")
+
+
+def _unb64(text: str) -> bytes:
+    return base64.b64decode(text.encode("ascii"))
+
+
+@dataclass(frozen=True)
+class SwathRecord:
+    """One committed swath as the manifest records it."""
+
+    name: str
+    file: str
+    size: int
+    fingerprint: str
+    quick_fingerprint: str
+    n_traces: int
+    chunk_traces: int
+    byte_order: str
+    format_code: int
+    textual_encoding: str
+    measurement_system: int
+    textual: bytes
+    extended_textual: bytes
+    binary: bytes
+    committed_at: str
+    state: str = "committed"
+
+    def to_json(self) -> dict[str, Any]:
+        doc = {k: getattr(self, k) for k in self.__dataclass_fields__}
+        for key in ("textual", "extended_textual", "binary"):
+            doc[key] = _b64(doc[key])
+        return doc
+
+    @classmethod
+    def from_json(cls, doc: dict[str, Any]) -> "SwathRecord":
+        doc = dict(doc)
+        for key in ("textual", "extended_textual", "binary"):
+            doc[key] = _unb64(doc[key])
+        return cls(**doc)
+
+    def chunk_bounds(self) -> list[tuple[int, int]]:
+        """``[(start, stop), ...]`` of every chunk of this swath's per-trace arrays."""
+        return chunk_bounds(self.n_traces, self.chunk_traces)
+
+
+def chunk_bounds(n_traces: int, chunk_traces: int) -> list[tuple[int, int]]:
+    """Trace ranges of consecutive chunks of ``chunk_traces`` (last one short)."""
+    return [(a, min(a + chunk_traces, n_traces)) for a in range(0, n_traces, chunk_traces)]
+
+
+class SurveyStore:
+    """A handle on one survey store. Cheap to create; pass its ``path`` to
+    workers and reopen there (zarr handles are not shared across processes)."""
+
+    def __init__(self, path: Path, group: zarr.Group):
+        self.path = Path(path)
+        self._group = group
+
+    # -- opening -----------------------------------------------------------
+    @classmethod
+    def open(cls, path: str | Path, *, writable: bool = False) -> "SurveyStore":
+        """Open an existing store; :class:`StoreFormatError` if it is not ours."""
+        path = Path(path)
+        if not path.exists():
+            raise InputNotFoundError(f"{path}: no such survey store (create one with 'descatter ingest')")
+        if not (path / "zarr.json").is_file():
+            raise StoreFormatError(f"{path}: not a descatter survey store (no zarr.json at its root)")
+        try:
+            group = zarr.open_group(str(path), mode="r+" if writable else "r")
+        except Exception as exc:  # zarr raises several kinds for foreign data
+            raise StoreFormatError(f"{path}: not a readable zarr v3 group ({exc})") from exc
+        attrs = dict(group.attrs)
+        if attrs.get("format") != FORMAT_NAME:
+            raise StoreFormatError(
+                f"{path}: a zarr group but not a descatter survey store "
+                f"(format attribute {attrs.get('format')!r}, expected {FORMAT_NAME!r})"
+            )
+        version = attrs.get("format_version")
+        if not isinstance(version, int) or version > FORMAT_VERSION:
+            raise StoreFormatError(
+                f"{path}: store format version {version!r} is newer than this "
+                f"descatter reads ({FORMAT_VERSION}); upgrade descatter"
+            )
+        return cls(path, group)
+
+    @classmethod
+    def open_or_create(cls, path: str | Path) -> "SurveyStore":
+        """Open the store at ``path``, creating an empty one if nothing is there.
+
+        An existing non-empty folder that is not a store is refused rather
+        than written into.
+        """
+        path = Path(path)
+        if path.exists() and any(path.iterdir()):
+            return cls.open(path, writable=True)
+        if path.exists() and not path.is_dir():
+            raise StoreFormatError(f"{path}: exists and is not a folder")
+        group = zarr.open_group(str(path), mode="w-")
+        group.attrs.update(
+            {
+                "format": FORMAT_NAME,
+                "format_version": FORMAT_VERSION,
+                "n_samples": None,
+                "sample_interval_s": None,
+                "units": {"time": "s", "coordinates": "m", "samples": "as recorded"},
+                "ingest_config": None,
+            }
+        )
+        write_json_atomic(path / MANIFEST_NAME, {"format": MANIFEST_FORMAT, "version": 1, "swaths": []})
+        log.info("created survey store %s", path)
+        return cls(path, group)
+
+    # -- root attributes ---------------------------------------------------
+    @property
+    def attrs(self) -> dict[str, Any]:
+        return dict(zarr.open_group(str(self.path), mode="r").attrs)
+
+    @property
+    def n_samples(self) -> int | None:
+        return self.attrs.get("n_samples")
+
+    @property
+    def sample_interval_s(self) -> float | None:
+        return self.attrs.get("sample_interval_s")
+
+    def set_attrs(self, **values: Any) -> None:
+        """Update root attributes. Single writer only (the lock holder)."""
+        self._group.attrs.update(values)
+
+    # -- manifest ----------------------------------------------------------
+    def manifest(self) -> list[SwathRecord]:
+        """Committed swaths in manifest order (fresh from disk)."""
+        doc = read_json(self.path / MANIFEST_NAME)
+        if doc.get("format") != MANIFEST_FORMAT:
+            raise StoreFormatError(f"{self.path / MANIFEST_NAME}: not a descatter manifest")
+        return [SwathRecord.from_json(s) for s in doc["swaths"]]
+
+    def swath(self, name: str) -> SwathRecord:
+        for rec in self.manifest():
+            if rec.name == name:
+                return rec
+        names = ", ".join(r.name for r in self.manifest()) or "none"
+        raise SwathConflictError(f"{self.path}: no committed swath {name!r} (swaths: {names})")
+
+    def swath_names(self) -> list[str]:
+        return [r.name for r in self.manifest()]
+
+    def commit_swath(self, record: SwathRecord) -> None:
+        """Publish a fully written swath: append it to the manifest atomically."""
+        records = self.manifest()
+        if any(r.name == record.name for r in records):
+            raise SwathConflictError(f"{self.path}: swath {record.name!r} is already committed")
+        records.append(record)
+        self._write_manifest(records)
+        log.info("committed swath %s (%d traces)", record.name, record.n_traces)
+
+    def _write_manifest(self, records: list[SwathRecord]) -> None:
+        write_json_atomic(
+            self.path / MANIFEST_NAME,
+            {"format": MANIFEST_FORMAT, "version": 1, "swaths": [r.to_json() for r in records]},
+        )
+
+    # -- swath arrays ------------------------------------------------------
+    def _swath_path(self, name: str) -> str:
+        return f"{SWATHS}/{name}"
+
+    def has_swath_group(self, name: str) -> bool:
+        return (self.path / SWATHS / name / "zarr.json").is_file()
+
+    def drop_swath_group(self, name: str) -> None:
+        """Delete a swath's group. Refused for a committed swath (remove it
+        from the manifest first); used to discard a staged, failed ingest."""
+        if name in self.swath_names():
+            raise SwathConflictError(f"{self.path}: refusing to delete committed swath {name!r}")
+        shutil.rmtree(self.path / SWATHS / name, ignore_errors=True)
+
+    def create_swath_arrays(
+        self,
+        name: str,
+        *,
+        n_traces: int,
+        n_samples: int,
+        chunk_traces: int,
+        header_dtypes: dict[str, str],
+        compression_level: int = 1,
+    ) -> None:
+        """Create (or recreate) the staging arrays of one swath, all chunked
+        on the same trace boundaries so one task writes one chunk of each."""
+        if name in self.swath_names():
+            raise SwathConflictError(f"{self.path}: swath {name!r} is already committed")
+        group = self._group.require_group(SWATHS).require_group(name)
+        chunks = max(1, min(chunk_traces, n_traces))
+        group.create_array(
+            "traces", shape=(n_traces, n_samples), chunks=(chunks, n_samples), dtype="float32",
+            compressors=_sample_codec(compression_level), fill_value=0.0, overwrite=True,
+            dimension_names=["trace", "sample"],
+        )
+        group.create_array(
+            "trace_headers", shape=(n_traces, 240), chunks=(chunks, 240), dtype="uint8",
+            compressors=(_HEADER_CODEC,), fill_value=0, overwrite=True,
+            dimension_names=["trace", "byte"],
+        )
+        headers = group.require_group("headers")
+        for field, dtype in header_dtypes.items():
+            headers.create_array(
+                field, shape=(n_traces,), chunks=(chunks,), dtype=dtype,
+                compressors=(_HEADER_CODEC,), fill_value=0, overwrite=True,
+                dimension_names=["trace"],
+            )
+
+    def array(self, swath: str, key: str) -> zarr.Array:
+        """Open one array of a swath read-only (``traces``, ``headers/offset``...)."""
+        try:
+            return zarr.open_array(str(self.path), path=f"{self._swath_path(swath)}/{key}", mode="r")
+        except FileNotFoundError as exc:
+            raise InputNotFoundError(f"{self.path}: swath {swath!r} has no array {key!r}") from exc
+
+    def header_fields(self, swath: str) -> list[str]:
+        root = self.path / SWATHS / swath / "headers"
+        return sorted(p.name for p in root.iterdir() if (p / "zarr.json").is_file())
+
+    def headers(self, swath: str, fields: list[str] | None = None) -> dict[str, np.ndarray]:
+        """Decoded trace-header fields of a swath, whole, as numpy arrays."""
+        names = fields if fields is not None else self.header_fields(swath)
+        return {f: self.array(swath, f"headers/{f}")[:] for f in names}
+
+    def iter_blocks(self, swath: str, key: str = "traces") -> Iterator[tuple[int, int, np.ndarray]]:
+        """Yield ``(start, stop, block)`` chunk by chunk for one swath's array."""
+        arr = self.array(swath, key)
+        rec = self.swath(swath)
+        for start, stop in rec.chunk_bounds():
+            yield start, stop, arr[start:stop]
+
+    def survey_array(self, key: str = "traces"):
+        """The whole survey's ``key`` array as one lazy dask array, swaths
+        concatenated in manifest order (chunks follow the stored chunks)."""
+        import dask.array as da
+
+        parts = [da.from_zarr(self.array(r.name, key)) for r in self.manifest()]
+        if not parts:
+            raise SwathConflictError(f"{self.path}: the store has no committed swath yet")
+        return da.concatenate(parts, axis=0)
+
+
+def write_trace_chunk(
+    store_path: str | Path,
+    swath: str,
+    start: int,
+    samples: np.ndarray,
+    raw_headers: np.ndarray,
+    fields: dict[str, np.ndarray],
+) -> None:
+    """Write one chunk of every per-trace array of a staged swath.
+
+    Called on workers. ``start`` must be a chunk boundary and the block exactly
+    one chunk long (or the last, short one), so no two writers share a chunk.
+    """
+    root = zarr.open_group(str(store_path), mode="r+")
+    group = root[f"{SWATHS}/{swath}"]
+    stop = start + samples.shape[0]
+    traces = group["traces"]
+    if start % traces.chunks[0] or (stop != traces.shape[0] and stop - start != traces.chunks[0]):
+        raise ValueError(
+            f"block [{start}, {stop}) of swath {swath!r} is not one chunk of {traces.chunks[0]} traces"
+        )
+    traces[start:stop] = samples
+    group["trace_headers"][start:stop] = raw_headers
+    headers = group["headers"]
+    for field, values in fields.items():
+        headers[field][start:stop] = values
