@@ -1,1 +1,269 @@
-def main(): print("ok")
+"""The ``descatter`` command line.
+
+Heavy modules (Dask, zarr, Prefect) are imported inside the commands that
+need them, so read-only commands start fast and never start Prefect.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import sys
+from pathlib import Path
+from typing import List, Optional, Tuple
+
+import typer
+from rich.console import Console
+
+from descatter.tasks.errors import DescatterError
+
+app = typer.Typer(
+    add_completion=False,
+    pretty_exceptions_show_locals=False,
+    no_args_is_help=True,
+    help=(
+        "Measure and remove near-surface scattering in 3D land seismic surveys. "
+        "Results must be reviewed by a qualified geophysicist before they are used."
+    ),
+)
+config_app = typer.Typer(no_args_is_help=True, help="Write or check a survey config file.")
+app.add_typer(config_app, name="config")
+
+console = Console(stderr=False)
+err_console = Console(stderr=True)
+
+
+def _progress(description: str):
+    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
+
+    return Progress(
+        TextColumn("[bold]{task.description}"), BarColumn(), MofNCompleteColumn(),
+        TextColumn("traces"), TimeRemainingColumn(), console=err_console, transient=False,
+        disable=not err_console.is_terminal,
+    )
+
+
+# -- config ---------------------------------------------------------------
+
+@config_app.command("init")
+def config_init(
+    path: Path = typer.Argument(..., help="where to write the template (TOML)"),
+    force: bool = typer.Option(False, "--force", help="overwrite an existing file"),
+) -> None:
+    """Write a commented template: every key, its default and its unit."""
+    from descatter.storage.atomic import write_bytes_atomic
+    from descatter.storage.config_file import config_template
+
+    if path.exists() and not force:
+        raise DescatterError(f"{path}: exists; pass --force to overwrite it")
+    write_bytes_atomic(path, config_template().encode())
+    console.print(f"wrote {path}")
+
+
+@config_app.command("check")
+def config_check(
+    path: Path = typer.Argument(..., help="survey config (TOML)"),
+    store: Optional[Path] = typer.Option(None, "--store", help="also check against this store's sampling"),
+) -> None:
+    """Validate a config and print the effective config."""
+    from descatter.storage.config_file import dump_config, load_config
+
+    cfg = load_config(path)
+    if store is not None:
+        from descatter.storage.store import SurveyStore
+
+        s = SurveyStore.open(store)
+        n = s.n_samples
+        dt = s.sample_interval_s
+        if n and dt and cfg.analysis.window_end_s > (n - 1) * dt:
+            raise DescatterError(
+                f"{path}: analysis.window_end_s = {cfg.analysis.window_end_s} s is past the end "
+                f"of the traces in {store} ({(n - 1) * dt:g} s)"
+            )
+    console.print(f"# {path}: valid. Effective config:")
+    console.print(dump_config(cfg), markup=False, highlight=False)
+
+
+# -- synth ----------------------------------------------------------------
+
+@app.command()
+def synth(
+    out: Path = typer.Argument(..., help="folder for lineNN.sgy, survey.toml and truth.npz"),
+    scenario: str = typer.Option("scatter", help="scatter (codas, statics, amplitudes) or statics (no coda)"),
+    swaths: Optional[int] = typer.Option(None, help="number of source lines, one SEG-Y file each"),
+    size: str = typer.Option("tiny", help="tiny, demo or large"),
+    traces: Optional[int] = typer.Option(None, help="about this many traces in all (overrides --size)"),
+    seed: int = typer.Option(0, help="random seed; the survey is deterministic from it"),
+    sps: bool = typer.Option(False, "--sps", help="also write SEG SPS geometry: survey.s, survey.r, survey.x"),
+) -> None:
+    """Write a synthetic land survey with known truth."""
+    from descatter.flows.synth import write_synthetic_survey
+
+    with _progress("synth") as bar:
+        task = bar.add_task("synth", total=None)
+        report = write_synthetic_survey(
+            out, scenario=scenario, n_swaths=swaths, size=None if traces else size, n_traces=traces,
+            seed=seed, sps=sps, progress=lambda done, total: bar.update(task, completed=done, total=total))
+    console.print(f"wrote {len(report.files)} swath file(s), {report.traces} traces, to {out}")
+    console.print(f"  config: {report.config}\n  truth:  {report.truth}")
+    if report.sps:
+        console.print("  sps:    " + " ".join(str(p) for p in report.sps))
+
+
+# -- ingest ---------------------------------------------------------------
+
+@app.command()
+def ingest(
+    store: Path = typer.Argument(..., help="survey store (created if missing)"),
+    files: List[Path] = typer.Argument(..., help="SEG-Y files, one swath each (named by file stem)"),
+    config: Optional[Path] = typer.Option(None, "--config", help="survey config (TOML)"),
+    workers: Optional[int] = typer.Option(None, "--workers", help="local worker processes (default: one per core)"),
+    cluster: str = typer.Option("local", "--cluster", help="local, threads, or tcp://HOST:PORT"),
+    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB"),
+) -> None:
+    """Add SEG-Y swaths to a survey store (a committed file is skipped)."""
+    from descatter.flows.cluster import dask_client
+    from descatter.flows.ingest import ingest_swaths
+    from descatter.storage.config_file import load_config
+
+    cfg = load_config(config)
+    with _progress("ingest") as bar, dask_client(cluster, workers=workers, memory_limit=memory_limit) as client:
+        tasks: dict[str, int] = {}
+
+        def progress(swath: str, done: int, total: int) -> None:
+            if swath not in tasks:
+                tasks[swath] = bar.add_task(swath, total=total)
+            bar.update(tasks[swath], completed=done)
+
+        report = ingest_swaths(store, files, cfg, client=client, progress=progress)
+    for name in report.skipped:
+        console.print(f"skipped {name}: already in the store")
+    if report.added:
+        mb = report.bytes_read / 1e6
+        console.print(
+            f"added {len(report.added)} swath(s) ({', '.join(report.added)}), {report.traces} traces, "
+            f"{mb:.1f} MB in {report.seconds:.1f} s"
+            + (f"; resumed {report.resumed_chunks} finished chunk(s)" if report.resumed_chunks else "")
+        )
+
+
+# -- info -----------------------------------------------------------------
+
+@app.command()
+def info(store: Path = typer.Argument(..., help="survey store")) -> None:
+    """Traces, samples, interval, swaths and warnings of a store."""
+    from descatter.flows.summary import store_summary
+
+    console.print(store_summary(store), highlight=False, soft_wrap=True)
+
+
+# -- geometry -------------------------------------------------------------
+
+@app.command()
+def geometry(
+    store: Path = typer.Argument(..., help="survey store"),
+    sps: Tuple[Path, Path, Path] = typer.Option(..., "--sps", help="SEG SPS files: S (sources), R (receivers), X (relations)"),
+    config: Optional[Path] = typer.Option(None, "--config", help="survey config (SPS revision, columns, snapping)"),
+) -> None:
+    """Rebuild the store's geometry from SEG SPS files; report header disagreements."""
+    from descatter.flows.sps_geometry import apply_sps_geometry
+    from descatter.storage.config_file import load_config
+
+    report = apply_sps_geometry(store, list(sps), load_config(config))
+    console.print(f"geometry of {report.traces} traces rebuilt from {', '.join(map(str, sps))}")
+    console.print(f"{report.n_disagreeing} trace(s) where SPS and header positions disagree beyond tolerance")
+    for r in report.disagreements:
+        console.print(f"  {r['swath']} trace {r['trace']}: {r['error_m']:.2f} m (source line {r['source_line']:g} "
+                      f"point {r['source_point']:g}, receiver line {r['receiver_line']:g} point {r['receiver_point']:g})")
+
+
+# -- qc -------------------------------------------------------------------
+
+@app.command()
+def qc(
+    store: Path = typer.Argument(..., help="survey store"),
+    out: Path = typer.Argument(..., help="CSV file: swath,trace,field_record,channel,flags"),
+) -> None:
+    """Write every flagged or excluded trace with its reasons to a CSV file."""
+    from descatter.flows.qc import write_qc_report
+
+    n = write_qc_report(store, out)
+    console.print(f"wrote {n} flagged trace(s) to {out}")
+
+
+# -- export ---------------------------------------------------------------
+
+@app.command()
+def export(
+    store: Path = typer.Argument(..., help="survey store"),
+    out: Path = typer.Argument(..., help="output SEG-Y file (or folder with --per-swath)"),
+    array: str = typer.Option("traces", "--array", help="traces or corrected"),
+    sample_format: str = typer.Option("ieee", "--format", help="ieee (format 5) or ibm (format 1)"),
+    byte_order: str = typer.Option("big", "--byte-order", help="big (standard) or little"),
+    per_swath: bool = typer.Option(False, "--per-swath", help="one file per swath: OUT/<swath>.sgy"),
+) -> None:
+    """Write the store's traces back to SEG-Y."""
+    from descatter.flows.export import export_segy
+
+    if sample_format not in ("ieee", "ibm"):
+        raise DescatterError(f"--format {sample_format!r}: expected 'ieee' or 'ibm'")
+    if byte_order not in ("big", "little"):
+        raise DescatterError(f"--byte-order {byte_order!r}: expected 'big' or 'little'")
+    with _progress("export") as bar:
+        task = bar.add_task("export", total=None)
+        report = export_segy(store, out, array=array, sample_format=sample_format, byte_order=byte_order,
+                             per_swath=per_swath,
+                             progress=lambda done, total: bar.update(task, completed=done, total=total))
+    console.print(f"wrote {report.traces} traces to " + ", ".join(str(f) for f in report.files))
+
+
+# -- lock -----------------------------------------------------------------
+
+@app.command()
+def lock(
+    store: Path = typer.Argument(..., help="survey store"),
+    clear: bool = typer.Option(False, "--clear", help="remove a stale lock (refused while its holder lives)"),
+) -> None:
+    """Show the store's writer lock, or clear a stale one."""
+    from descatter.storage.lock import clear_lock, describe_holder, lock_is_stale, read_lock
+
+    holder = read_lock(store)
+    if holder is None:
+        console.print(f"{store}: not locked")
+        return
+    if clear:
+        clear_lock(store)
+        console.print(f"{store}: cleared the lock of {describe_holder(holder)}")
+        return
+    why = lock_is_stale(holder)
+    console.print(f"{store}: locked by {describe_holder(holder)}" + (f" - stale: {why}" if why else ""))
+
+
+# -- demo -----------------------------------------------------------------
+
+@app.command()
+def demo(
+    out: Path = typer.Argument(Path("demo-run"), help="folder for the demo survey, store and outputs"),
+    size: str = typer.Option("demo", help="tiny or demo"),
+    workers: Optional[int] = typer.Option(None, "--workers", help="local worker processes"),
+) -> None:
+    """Run every stage on a synthetic survey and say where to look."""
+    from descatter.flows.demo import run_demo
+
+    run_demo(out, size=size, workers=workers, console=console, progress=_progress)
+
+
+def main() -> None:
+    logging.basicConfig(level=logging.WARNING, format="%(levelname)s %(name)s: %(message)s")
+    # distributed configures its loggers when first imported (lazily, later)
+    os.environ.setdefault("DASK_LOGGING__DISTRIBUTED", "error")
+    os.environ.setdefault("DASK_DISTRIBUTED__LOGGING__DISTRIBUTED", "error")
+    try:
+        app(standalone_mode=True)
+    except DescatterError as exc:
+        err_console.print(f"[bold red]error:[/] {exc}", highlight=False)
+        sys.exit(2)
+
+
+if __name__ == "__main__":
+    main()

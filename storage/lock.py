@@ -56,6 +56,14 @@ def read_lock(store_path: str | Path) -> dict[str, Any] | None:
         return {"host": "?", "pid": -1, "started": 0, "heartbeat": 0, "torn": True}
 
 
+def _dead_on_this_host(holder: dict[str, Any]) -> bool:
+    return (
+        not holder.get("torn")
+        and holder.get("host") == socket.gethostname()
+        and not _pid_alive(int(holder.get("pid", -1)))
+    )
+
+
 def lock_is_stale(holder: dict[str, Any], *, stale_after_s: float = STALE_AFTER_S) -> str | None:
     """Why the holder looks gone (a sentence), or None if it looks alive."""
     if holder.get("torn"):
@@ -112,9 +120,15 @@ class StoreLock:
             "heartbeat": t, "command": self.command,
         }
         try:
-            fd = os.open(self.path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o644)
+            fd = self._create()
         except FileExistsError:
             holder = read_lock(self.path.parent) or {}
+            if _dead_on_this_host(holder):
+                # The holder was killed: its process is provably gone, so the
+                # lock protects nothing. Take it over, and say so.
+                log.warning("taking over the lock of %s from dead %s", self.path.parent, describe_holder(holder))
+                self.path.unlink(missing_ok=True)
+                return self.acquire()
             why = lock_is_stale(holder)
             hint = (
                 f" It looks stale ({why}): check, then run 'descatter lock {self.path.parent} --clear'."
@@ -129,6 +143,9 @@ class StoreLock:
         self._thread = threading.Thread(target=self._beat, name="descatter-lock-heartbeat", daemon=True)
         self._thread.start()
         return self
+
+    def _create(self) -> int:
+        return os.open(self.path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o644)
 
     def _beat(self) -> None:
         while not self._stop.wait(self.heartbeat_s):

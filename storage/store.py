@@ -152,11 +152,12 @@ class SurveyStore:
         than written into.
         """
         path = Path(path)
-        if path.exists() and any(path.iterdir()):
+        # The writer takes the lock (a file in the store folder) first.
+        if path.exists() and any(p.name != "lock.json" for p in path.iterdir()):
             return cls.open(path, writable=True)
         if path.exists() and not path.is_dir():
             raise StoreFormatError(f"{path}: exists and is not a folder")
-        group = zarr.open_group(str(path), mode="w-")
+        group = zarr.open_group(str(path), mode="a")
         group.attrs.update(
             {
                 "format": FORMAT_NAME,
@@ -167,7 +168,8 @@ class SurveyStore:
                 "ingest_config": None,
             }
         )
-        write_json_atomic(path / MANIFEST_NAME, {"format": MANIFEST_FORMAT, "version": 1, "swaths": []})
+        write_json_atomic(path / MANIFEST_NAME, {"format": MANIFEST_FORMAT, "version": 1,
+                                                 "stations": {"sources": 0, "receivers": 0}, "swaths": []})
         log.info("created survey store %s", path)
         return cls(path, group)
 
@@ -189,12 +191,21 @@ class SurveyStore:
         self._group.attrs.update(values)
 
     # -- manifest ----------------------------------------------------------
-    def manifest(self) -> list[SwathRecord]:
-        """Committed swaths in manifest order (fresh from disk)."""
+    def _manifest_doc(self) -> dict[str, Any]:
         doc = read_json(self.path / MANIFEST_NAME)
         if doc.get("format") != MANIFEST_FORMAT:
             raise StoreFormatError(f"{self.path / MANIFEST_NAME}: not a descatter manifest")
-        return [SwathRecord.from_json(s) for s in doc["swaths"]]
+        return doc
+
+    def manifest(self) -> list[SwathRecord]:
+        """Committed swaths in manifest order (fresh from disk)."""
+        return [SwathRecord.from_json(s) for s in self._manifest_doc()["swaths"]]
+
+    def station_counts(self) -> dict[str, int]:
+        """Committed length of the source and receiver station tables: rows
+        past it belong to an uncommitted swath and are ignored."""
+        counts = self._manifest_doc().get("stations", {})
+        return {"sources": int(counts.get("sources", 0)), "receivers": int(counts.get("receivers", 0))}
 
     def swath(self, name: str) -> SwathRecord:
         for rec in self.manifest():
@@ -206,19 +217,25 @@ class SurveyStore:
     def swath_names(self) -> list[str]:
         return [r.name for r in self.manifest()]
 
-    def commit_swath(self, record: SwathRecord) -> None:
-        """Publish a fully written swath: append it to the manifest atomically."""
+    def commit_swath(self, record: SwathRecord, *, stations: dict[str, int] | None = None) -> None:
+        """Publish a fully written swath: rewrite the manifest atomically with
+        it appended (and the station tables' new committed lengths)."""
         records = self.manifest()
         if any(r.name == record.name for r in records):
             raise SwathConflictError(f"{self.path}: swath {record.name!r} is already committed")
         records.append(record)
-        self._write_manifest(records)
+        self._write_manifest(records, stations or self.station_counts())
         log.info("committed swath %s (%d traces)", record.name, record.n_traces)
 
-    def _write_manifest(self, records: list[SwathRecord]) -> None:
+    def set_station_counts(self, stations: dict[str, int]) -> None:
+        """Commit new station-table lengths (after a geometry rebuild)."""
+        self._write_manifest(self.manifest(), stations)
+
+    def _write_manifest(self, records: list[SwathRecord], stations: dict[str, int]) -> None:
         write_json_atomic(
             self.path / MANIFEST_NAME,
-            {"format": MANIFEST_FORMAT, "version": 1, "swaths": [r.to_json() for r in records]},
+            {"format": MANIFEST_FORMAT, "version": 1, "stations": stations,
+             "swaths": [r.to_json() for r in records]},
         )
 
     # -- swath arrays ------------------------------------------------------
@@ -260,6 +277,10 @@ class SurveyStore:
             "trace_headers", shape=(n_traces, 240), chunks=(chunks, 240), dtype="uint8",
             compressors=(_HEADER_CODEC,), fill_value=0, overwrite=True,
             dimension_names=["trace", "byte"],
+        )
+        group.create_array(
+            "qc_flags", shape=(n_traces,), chunks=(chunks,), dtype="uint16",
+            compressors=(_HEADER_CODEC,), fill_value=0, overwrite=True, dimension_names=["trace"],
         )
         headers = group.require_group("headers")
         for field, dtype in header_dtypes.items():
@@ -310,6 +331,7 @@ def write_trace_chunk(
     samples: np.ndarray,
     raw_headers: np.ndarray,
     fields: dict[str, np.ndarray],
+    qc_flags: np.ndarray | None = None,
 ) -> None:
     """Write one chunk of every per-trace array of a staged swath.
 
@@ -329,3 +351,5 @@ def write_trace_chunk(
     headers = group["headers"]
     for field, values in fields.items():
         headers[field][start:stop] = values
+    if qc_flags is not None:
+        group["qc_flags"][start:stop] = qc_flags

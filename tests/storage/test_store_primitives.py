@@ -6,6 +6,7 @@ from __future__ import annotations
 import json
 import multiprocessing as mp
 import os
+import socket
 import tomllib
 
 import numpy as np
@@ -140,10 +141,16 @@ def test_lock_names_holder_and_detects_stale(tmp_path):
         release.set()
         proc.join(30)
     assert read_lock(tmp_path) is None  # released on exit
-    # a holder that died without releasing: stale, clearable
+    # a holder on this host that was killed: stale, and the next writer takes over
     (tmp_path / "lock.json").write_text(json.dumps(
-        {"host": os.uname().nodename, "pid": proc.pid, "started": 0, "heartbeat": 0}))
+        {"host": socket.gethostname(), "pid": proc.pid, "started": 0, "heartbeat": 0}))
     assert "no longer runs" in lock_is_stale(read_lock(tmp_path))
+    with StoreLock(tmp_path):
+        assert read_lock(tmp_path)["pid"] == os.getpid()
+    # a holder on another host whose heartbeat stopped: reported stale, cleared by hand
+    (tmp_path / "lock.json").write_text(json.dumps(
+        {"host": "node-17", "pid": 1, "started": 0, "heartbeat": 0}))
+    assert "heartbeat" in lock_is_stale(read_lock(tmp_path))
     with pytest.raises(LockHeldError, match="looks stale"):
         StoreLock(tmp_path).acquire()
     clear_lock(tmp_path)
