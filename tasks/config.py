@@ -9,15 +9,10 @@ turns into a commented template, so the template always lists every key.
 
 from __future__ import annotations
 
-from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+from pydantic import Field, field_validator, model_validator
 
-
-def _unit(unit: str) -> dict:
-    return {"unit": unit}
-
-
-class _Section(BaseModel):
-    model_config = ConfigDict(extra="forbid", validate_assignment=True, frozen=False)
+from descatter.tasks.config_base import _Section, _unit
+from descatter.tasks.geometry_config import GeometryConfig, QcConfig
 
 
 # Default trace-header byte positions: SEG-Y rev 1 (2002), table 2
@@ -138,5 +133,7 @@ class SurveyConfig(_Section):
     """Everything a survey run can be told. Sections mirror the stages."""
 
     ingest: IngestConfig = Field(default_factory=IngestConfig, description="SEG-Y ingest")
+    geometry: GeometryConfig = Field(default_factory=GeometryConfig, description="stations, shots and geometry checks")
+    qc: QcConfig = Field(default_factory=QcConfig, description="trace QC policies and exclusions")
     analysis: AnalysisConfig = Field(default_factory=AnalysisConfig, description="analysis window and band")
 

@@ -47,3 +47,7 @@ class GeometryError(DescatterError, ValueError):
 
 class LockHeldError(DescatterError, RuntimeError):
     """Another process holds the store's writer lock."""
+
+
+class TraceQcError(DescatterError, ValueError):
+    """Traces carry a QC flag whose policy is ``error``."""

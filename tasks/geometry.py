@@ -410,3 +410,44 @@ def geometry_disagreement(
     trace = trace[np.lexsort((trace, -err[trace]))]
     return {"trace": trace.astype(np.int64), "source_error_m": es[trace],
             "receiver_error_m": er[trace], "error_m": err[trace]}
+
+
+def relation_runs(
+    field_record: np.ndarray, channel: np.ndarray, receiver_line: np.ndarray, receiver_point: np.ndarray
+) -> dict[str, np.ndarray]:
+    """Compress per-trace (record, channel) -> (receiver line, point) into
+    runs, the shape of SEG SPS relation (X) records.
+
+    Inputs int/float [n]. A run is a maximal sequence of traces of one field
+    record and one receiver line, in channel order, whose channel step is 1
+    and whose receiver point changes by the same step at every channel.
+    Returns int64/float64 arrays [n_runs]: ``field_record``, ``from_channel``,
+    ``to_channel``, ``receiver_line``, ``from_receiver``, ``to_receiver``;
+    expanding every run linearly gives back each trace's receiver point.
+    """
+    fr = np.asarray(field_record, np.int64)
+    ch = np.asarray(channel, np.int64)
+    line = np.asarray(receiver_line, np.float64)
+    point = np.asarray(receiver_point, np.float64)
+    order = np.lexsort((ch, fr))
+    fr, ch, line, point = fr[order], ch[order], line[order], point[order]
+    n = fr.size
+    if n == 0:
+        empty_i, empty_f = np.zeros(0, np.int64), np.zeros(0)
+        return {"field_record": empty_i, "from_channel": empty_i, "to_channel": empty_i,
+                "receiver_line": empty_f, "from_receiver": empty_f, "to_receiver": empty_f}
+    step = np.diff(point)
+    # A run breaks where the record or line changes or a channel is skipped
+    # (same[i-1] false), or where the receiver step differs from the step
+    # into the previous trace of the same run.
+    same = (fr[1:] == fr[:-1]) & (line[1:] == line[:-1]) & (ch[1:] == ch[:-1] + 1)
+    brk = np.ones(n, dtype=bool)
+    brk[1:] = ~same
+    if n > 2:
+        brk[2:] |= same[:-1] & same[1:] & ~np.isclose(step[1:], step[:-1], rtol=0, atol=1e-6)
+    starts = np.flatnonzero(brk)
+    ends = np.concatenate([starts[1:], [n]]) - 1
+    return {
+        "field_record": fr[starts], "from_channel": ch[starts], "to_channel": ch[ends],
+        "receiver_line": line[starts], "from_receiver": point[starts], "to_receiver": point[ends],
+    }

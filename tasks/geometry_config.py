@@ -26,7 +26,7 @@ from typing import Literal
 import numpy as np
 from pydantic import Field, field_validator, model_validator
 
-from .config import _Section, _unit
+from .config_base import _Section, _unit
 from .errors import ConfigError
 from .geometry import station_keys, station_keys_from_numbers
 from .trace_qc import FLAG_BITS

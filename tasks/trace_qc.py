@@ -27,7 +27,7 @@ from collections.abc import Iterable, Sequence
 
 import numpy as np
 
-from .errors import DescatterError
+from .errors import TraceQcError
 
 #: bit of each flag in a trace's uint16 mask, in report order
 FLAG_BITS: dict[str, int] = {
@@ -39,10 +39,6 @@ FLAG_BITS: dict[str, int] = {
     "clipped": 1 << 5,
     "excluded": 1 << 6,
 }
-
-
-class TraceQcError(DescatterError, ValueError):
-    """Traces carry a QC flag whose policy is ``error``."""
 
 
 def dead_traces(samples: np.ndarray) -> np.ndarray:
@@ -144,20 +140,41 @@ def trace_flags(
     if samples.ndim != 2:
         raise ValueError(f"samples must be [n_traces, n_samples], got shape {samples.shape}")
     n = samples.shape[0]
-    dead = dead_traces(samples)
-    bad = nan_traces(samples)
-    missing = zero_xy_traces(source_x, source_y, receiver_x, receiver_y)
-    mismatch = offset_mismatch_traces(offset, source_x, source_y, receiver_x, receiver_y,
-                                      tolerance_m=offset_tolerance_m) & ~missing
-    clipped = clipped_traces(samples, clip_run=clip_run)
     if duplicate is None:
         duplicate = (duplicate_traces(source_key, receiver_key) if source_key is not None
                      and receiver_key is not None else np.zeros(n, dtype=bool))
+    return sample_flags(samples, clip_run=clip_run) | header_flags(
+        source_x, source_y, receiver_x, receiver_y, offset,
+        offset_tolerance_m=offset_tolerance_m, duplicate=duplicate)
+
+
+def _mask(n: int, hits: dict[str, np.ndarray]) -> np.ndarray:
     mask = np.zeros(n, dtype=np.uint16)
-    for name, hit in (("dead", dead), ("nan", bad), ("duplicate", np.asarray(duplicate, bool)),
-                      ("zero_xy", missing), ("offset_mismatch", mismatch), ("clipped", clipped)):
-        mask[hit] |= np.uint16(FLAG_BITS[name])
+    for name, hit in hits.items():
+        mask[np.asarray(hit, bool)] |= np.uint16(FLAG_BITS[name])
     return mask
+
+
+def sample_flags(samples: np.ndarray, *, clip_run: int) -> np.ndarray:
+    """The flags that need the samples (dead, nan, clipped): uint16 [n] for
+    float [n, n_samples]; computed where the samples are, chunk by chunk."""
+    samples = np.asarray(samples)
+    return _mask(samples.shape[0], {"dead": dead_traces(samples), "nan": nan_traces(samples),
+                                    "clipped": clipped_traces(samples, clip_run=clip_run)})
+
+
+def header_flags(
+    source_x: np.ndarray, source_y: np.ndarray, receiver_x: np.ndarray, receiver_y: np.ndarray,
+    offset: np.ndarray, *, offset_tolerance_m: float, duplicate: np.ndarray,
+) -> np.ndarray:
+    """The flags that need only geometry (zero_xy, offset_mismatch,
+    duplicate): uint16 [n]. ``duplicate`` bool [n] from
+    :func:`duplicate_traces` over the whole swath. A trace without positions
+    is zero_xy only, never also offset_mismatch."""
+    missing = zero_xy_traces(source_x, source_y, receiver_x, receiver_y)
+    mismatch = offset_mismatch_traces(offset, source_x, source_y, receiver_x, receiver_y,
+                                      tolerance_m=offset_tolerance_m) & ~missing
+    return _mask(len(missing), {"duplicate": duplicate, "zero_xy": missing, "offset_mismatch": mismatch})
 
 
 def _in_ranges(trace_index: np.ndarray, ranges: np.ndarray) -> np.ndarray:

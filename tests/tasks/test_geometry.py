@@ -324,3 +324,26 @@ def test_geometry_config_defaults_and_validation():
             GeometryConfig(**bad)
     for field in GeometryConfig.model_fields.values():
         assert field.description and field.json_schema_extra["unit"]
+
+
+def test_relation_runs_expand_back_to_every_trace():
+    from descatter.tasks.geometry import relation_runs
+
+    rng = np.random.default_rng(5)
+    # two records; record 7 has two receiver lines, one with a reversed point order and a gap
+    fr = np.array([7] * 10 + [8] * 4)
+    ch = np.array([1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 1, 2, 3, 4])
+    line = np.array([101] * 5 + [102] * 5 + [101] * 4, float)
+    point = np.array([1001, 1002, 1003, 1004, 1005, 1010, 1009, 1008, 1006, 1005, 1001, 1003, 1005, 1007], float)
+    perm = rng.permutation(len(fr))
+    runs = relation_runs(fr[perm], ch[perm], line[perm], point[perm])
+    # expand: a plain loop over runs is the reference
+    got = {}
+    for r in range(len(runs["field_record"])):
+        a, b = runs["from_channel"][r], runs["to_channel"][r]
+        for c in range(a, b + 1):
+            t = 0.0 if b == a else (c - a) / (b - a)
+            p = runs["from_receiver"][r] + t * (runs["to_receiver"][r] - runs["from_receiver"][r])
+            got[(runs["field_record"][r], c)] = (runs["receiver_line"][r], p)
+    assert got == {(f, c): (l, p) for f, c, l, p in zip(fr, ch, line, point)}
+    assert len(runs["field_record"]) == 5  # 101 | 102 down by 1 | 102 jump | 102 down | record 8
