@@ -26,7 +26,7 @@ from descatter.storage.runlog import RunLog
 from descatter.storage.segy import (
     SegyInfo, decode_fields, quick_fingerprint, read_block, scale_coordinates, scan_segy,
 )
-from descatter.storage.store import SurveyStore, SwathRecord, chunk_bounds, write_trace_chunk
+from descatter.storage.store import SurveyStore, SwathRecord, chunk_bounds, write_header_fields, write_trace_chunk
 from descatter.flows.geometry import swath_geometry
 from descatter.storage.sps import read_sps, sps_trace_geometry
 from descatter.storage.stations import read_stations, write_qc_flags, write_stations, write_swath_geometry
@@ -78,11 +78,8 @@ def ingest_chunk(
         return {**done, "chunk": chunk, "resumed": True}
     t0 = time.perf_counter()
     samples, raw_headers, digest = read_block(info, start, stop)
-    ints = decode_fields(raw_headers, layout, info.byte_order)
-    scaled = scale_coordinates(ints, info.measurement_system)
-    fields = {name: (scaled[name] if name in SCALED_FIELDS else ints[name]) for name in layout}
     flags = sample_flags(samples, clip_run=clip_run)
-    write_trace_chunk(store_path, swath, start, samples, raw_headers, fields, qc_flags=flags)
+    write_trace_chunk(store_path, swath, start, samples, raw_headers, qc_flags=flags)
     summary = {
         "digest": digest.hex(),
         "traces": stop - start,
@@ -291,9 +288,25 @@ def load_sps_geometry(store: SurveyStore, config: SurveyConfig):
     return read_sps(*files, revision=config.geometry.sps_revision, columns=config.geometry.sps_columns or None)
 
 
-def build_geometry(store: SurveyStore, name: str, config: SurveyConfig, sps=None):
+def decode_headers(store: SurveyStore, name: str, info: SegyInfo, layout: dict[str, tuple[int, int]]) -> dict:
+    """Decode a staged swath's raw trace headers into ``headers/<field>``.
+
+    Done once per swath by the writer, whole-array: the 240 header bytes are
+    small beside the samples, and one write per field costs far less than
+    one per field and chunk (zarr's per-write overhead dominated the ingest
+    chunks when they wrote 16 header arrays each).
+    """
+    raw = store.array(name, "trace_headers")[:]
+    ints = decode_fields(raw, layout, info.byte_order)
+    scaled = scale_coordinates(ints, info.measurement_system)
+    fields = {f: (scaled[f] if f in SCALED_FIELDS else ints[f]) for f in layout}
+    write_header_fields(store, name, fields)
+    return fields
+
+
+def build_geometry(store: SurveyStore, name: str, config: SurveyConfig, sps=None, headers=None):
     """Geometry and QC of a staged or committed swath from its stored headers."""
-    headers = store.headers(name)
+    headers = headers if headers is not None else store.headers(name)
     trace_sps = sps_trace_geometry(sps, headers["field_record"], headers["channel"]) if sps else None
     flags = store.array(name, "qc_flags")[:]
     known = {kind: read_stations(store, kind)["key"] for kind in ("sources", "receivers")}
@@ -304,7 +317,8 @@ def build_geometry(store: SurveyStore, name: str, config: SurveyConfig, sps=None
 def _commit(store: SurveyStore, plan: _Plan, digests: dict[int, str], config: SurveyConfig) -> list[str]:
     """Geometry, station rows and QC of a fully written swath, then the
     manifest entry that publishes it. Returns warnings."""
-    geom = build_geometry(store, plan.name, config, load_sps_geometry(store, config))
+    headers = decode_headers(store, plan.name, plan.info, config.ingest.headers.layout())
+    geom = build_geometry(store, plan.name, config, load_sps_geometry(store, config), headers=headers)
     counts = store.station_counts()
     stations = {
         "sources": write_stations(store, "sources", geom.new_sources, start=counts["sources"]),

@@ -15,7 +15,9 @@ import hashlib
 import logging
 import math
 import os
+import struct
 import threading
+import zlib
 from collections.abc import Mapping
 from dataclasses import dataclass
 
@@ -383,7 +385,13 @@ def _trace_records(raw: np.ndarray, info: SegyInfo) -> np.ndarray:
 
 
 class _Digest(threading.Thread):
-    """blake2b of a buffer on a second thread: hashlib releases the GIL on large buffers."""
+    """CRC-32 of a buffer on a second thread (zlib releases the GIL on large buffers).
+
+    A CRC, not a cryptographic hash: the fingerprint detects accidental
+    change (a different or re-written file), not tampering, and at about
+    3 GB/s it costs the ingest little, where blake2b (about 0.45 GB/s here)
+    halved it.
+    """
 
     def __init__(self, data: np.ndarray) -> None:
         super().__init__(daemon=True)
@@ -391,7 +399,7 @@ class _Digest(threading.Thread):
         self.value = b""
 
     def run(self) -> None:
-        self.value = hashlib.blake2b(self.data, digest_size=16).digest()
+        self.value = struct.pack(">IQ", zlib.crc32(self.data), self.data.size)
 
 
 def read_block(
@@ -406,8 +414,8 @@ def read_block(
         in magnitude); IBM (1) by the exact decoder of ``storage.ibm``,
         which also decodes unnormalised fractions correctly.
     headers : uint8 [n, 240], the raw trace headers as in the file.
-    digest : ``hashlib.blake2b(raw, digest_size=16).digest()`` of the raw
-        bytes of the block (headers and samples), so a caller fingerprints
+    digest : 12 bytes, big-endian CRC-32 and byte count of the raw bytes of
+        the block (headers and samples), so a caller fingerprints
         the file in the same pass; ``None`` when ``digest=False``. Hashing
         runs on a second thread while the samples are decoded.
 

@@ -330,7 +330,6 @@ def write_trace_chunk(
     start: int,
     samples: np.ndarray,
     raw_headers: np.ndarray,
-    fields: dict[str, np.ndarray],
     qc_flags: np.ndarray | None = None,
 ) -> None:
     """Write one chunk of every per-trace array of a staged swath.
@@ -338,18 +337,23 @@ def write_trace_chunk(
     Called on workers. ``start`` must be a chunk boundary and the block exactly
     one chunk long (or the last, short one), so no two writers share a chunk.
     """
-    root = zarr.open_group(str(store_path), mode="r+")
-    group = root[f"{SWATHS}/{swath}"]
     stop = start + samples.shape[0]
-    traces = group["traces"]
+    base = f"{SWATHS}/{swath}"
+    traces = zarr.open_array(str(store_path), path=f"{base}/traces", mode="r+")
     if start % traces.chunks[0] or (stop != traces.shape[0] and stop - start != traces.chunks[0]):
         raise ValueError(
             f"block [{start}, {stop}) of swath {swath!r} is not one chunk of {traces.chunks[0]} traces"
         )
     traces[start:stop] = samples
-    group["trace_headers"][start:stop] = raw_headers
-    headers = group["headers"]
-    for field, values in fields.items():
-        headers[field][start:stop] = values
+    zarr.open_array(str(store_path), path=f"{base}/trace_headers", mode="r+")[start:stop] = raw_headers
     if qc_flags is not None:
-        group["qc_flags"][start:stop] = qc_flags
+        zarr.open_array(str(store_path), path=f"{base}/qc_flags", mode="r+")[start:stop] = qc_flags
+
+
+def write_header_fields(store: SurveyStore, swath: str, fields: dict[str, np.ndarray]) -> None:
+    """Write a staged swath's decoded header fields, each array whole."""
+    if swath in store.swath_names():
+        raise SwathConflictError(f"{store.path}: swath {swath!r} is committed; its headers are final")
+    group = zarr.open_group(str(store.path), mode="r+")[f"{SWATHS}/{swath}/headers"]
+    for field, values in fields.items():
+        group[field][:] = values

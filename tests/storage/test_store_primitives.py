@@ -18,7 +18,7 @@ from descatter.storage.checkpoints import Checkpoints, clear_swath
 from descatter.storage.config_file import config_template, dump_config, load_config, parse_config
 from descatter.storage.lock import StoreLock, clear_lock, lock_is_stale, read_lock
 from descatter.storage.runlog import RunLog, read_runlog
-from descatter.storage.store import SurveyStore, SwathRecord, chunk_bounds, write_trace_chunk
+from descatter.storage.store import SurveyStore, SwathRecord, chunk_bounds, write_header_fields, write_trace_chunk
 from descatter.tasks.config import SurveyConfig
 from descatter.tasks.errors import (
     ConfigError, InputNotFoundError, LockHeldError, StoreFormatError, SwathConflictError,
@@ -71,8 +71,8 @@ def test_manifest_commit_round_trip_and_staging_invisible(tmp_path):
     rng = np.random.default_rng(1)
     for a, b in chunk_bounds(10, 4):
         write_trace_chunk(store.path, "line01", a, rng.standard_normal((b - a, 6)).astype("float32"),
-                          np.full((b - a, 240), 7, "uint8"),
-                          {"channel": np.arange(a, b, dtype="int32"), "offset": np.arange(a, b) * 1.5})
+                          np.full((b - a, 240), 7, "uint8"))
+    write_header_fields(store, "line01", {"channel": np.arange(10, dtype="int32"), "offset": np.arange(10) * 1.5})
     rec = _record("line01")
     store.commit_swath(rec)
     again = SurveyStore.open(store.path)
@@ -89,7 +89,7 @@ def test_chunk_writes_must_be_whole_chunks(tmp_path):
     store = SurveyStore.open_or_create(tmp_path / "s.zarr")
     store.create_swath_arrays("a", n_traces=10, n_samples=3, chunk_traces=4, header_dtypes={})
     with pytest.raises(ValueError, match="not one chunk"):
-        write_trace_chunk(store.path, "a", 2, np.zeros((4, 3), "float32"), np.zeros((4, 240), "uint8"), {})
+        write_trace_chunk(store.path, "a", 2, np.zeros((4, 3), "float32"), np.zeros((4, 240), "uint8"))
 
 
 def test_checkpoints_are_keyed_by_fingerprint(tmp_path):
