@@ -148,20 +148,24 @@ def test_bad_input_names_file_and_leaves_store_unchanged(case, ingested, tiny_su
     assert _tree_digest(store) == before
 
 
-def test_other_sampling_refused(tiny_survey, ingested, client, tmp_path):
+@pytest.mark.parametrize("n_samples, interval_us, match", [(100, 4000, "samples per trace"),
+                                                         (250, 2000, "sample interval 2 ms")])
+def test_other_sampling_refused(n_samples, interval_us, match, tiny_survey, ingested, client, tmp_path):
     store = tmp_path / "s.zarr"
     shutil.copytree(ingested[0], store)
     before = _tree_digest(store)
     other = tmp_path / "resampled.sgy"
-    spec = segyio.spec()
-    spec.format, spec.samples, spec.tracecount = 5, list(range(100)), 4
+    spec = segyio.spec()  # segyio as an independent writer
+    spec.format, spec.samples, spec.tracecount = 5, list(range(n_samples)), 4
     with segyio.create(str(other), spec) as f:
         for i in range(4):
-            f.header[i] = {segyio.TraceField.TRACE_SAMPLE_COUNT: 100, segyio.TraceField.TRACE_SAMPLE_INTERVAL: 2000}
-            f.trace[i] = np.zeros(100, "float32")
-        f.bin.update({segyio.BinField.Interval: 2000})
-    with pytest.raises(SwathConflictError, match="samples per trace"):
+            f.header[i] = {segyio.TraceField.TRACE_SAMPLE_COUNT: n_samples,
+                           segyio.TraceField.TRACE_SAMPLE_INTERVAL: interval_us}
+            f.trace[i] = np.zeros(n_samples, "float32")
+        f.bin.update({segyio.BinField.Interval: interval_us})
+    with pytest.raises(SwathConflictError, match=match) as info:
         ingest_swaths(store, [other], _cfg(tiny_survey), client=client)
+    assert str(other) in str(info.value)
     assert _tree_digest(store) == before
 
 
