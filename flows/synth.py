@@ -24,7 +24,7 @@ from descatter.storage.segy_write import (
 from descatter.storage.sps import SpsPoints, SpsRelations, write_sps
 from descatter.tasks import synthetic
 from descatter.tasks.geometry import relation_runs
-from descatter.tasks.config import AnalysisConfig, HeaderPositions, SurveyConfig
+from descatter.tasks.config import AnalysisConfig, EstimateConfig, HeaderPositions, SurveyConfig
 
 log = logging.getLogger(__name__)
 
@@ -84,8 +84,10 @@ def _trace_headers(geom, sl: slice, spec, layout: dict[str, tuple[int, int]]) ->
 
 
 def survey_config(spec) -> SurveyConfig:
-    """The config that suits a synthetic survey (velocity, window, band)."""
+    """The config that suits a synthetic survey (velocity, window, band, radii)."""
     return SurveyConfig(
+        estimate=EstimateConfig(receiver_radius_m=float(spec.receiver_pair_radius_m),
+                                source_radius_m=float(spec.source_pair_radius_m)),
         analysis=AnalysisConfig(
             velocity=[tuple(map(float, p)) for p in spec.velocity],
             window_start_s=float(spec.window_s[0]),

@@ -9,6 +9,8 @@ turns into a commented template, so the template always lists every key.
 
 from __future__ import annotations
 
+from typing import Literal
+
 from pydantic import Field, field_validator, model_validator
 
 from descatter.tasks.config_base import _Section, _unit
@@ -99,6 +101,18 @@ class AnalysisConfig(_Section):
     window_start_s: float = Field(0.2, ge=0.0, description="analysis window start (after NMO)", json_schema_extra=_unit("s"))
     window_end_s: float = Field(1.2, gt=0.0, description="analysis window end (after NMO)", json_schema_extra=_unit("s"))
     band_hz: tuple[float, float] = Field((8.0, 60.0), description="frequency band of the estimation", json_schema_extra=_unit("Hz"))
+    taper_s: float = Field(0.05, ge=0.0, description="cosine taper inside each window edge", json_schema_extra=_unit("s"))
+    stretch_mute: float = Field(
+        0.5, gt=0.0, description="NMO stretch mute: samples stretched more than this fraction are zeroed",
+        json_schema_extra=_unit("fraction"),
+    )
+    moveout: Literal["nmo", "lmo"] = Field(
+        "nmo", description="nmo (reflections, velocity function) or lmo (early arrivals, lmo_velocity_mps)",
+        json_schema_extra=_unit("choice"),
+    )
+    lmo_velocity_mps: float = Field(1500.0, gt=0.0, description="linear-moveout velocity, with moveout = lmo",
+                                    json_schema_extra=_unit("m/s"))
+    n_fft: int = Field(0, ge=0, description="FFT length of the window; 0 takes the next power of two", json_schema_extra=_unit("samples"))
     near_surface_velocity_mps: float = Field(
         200.0, gt=0.0, description="velocity of the scattering layer, for spacing checks",
         json_schema_extra=_unit("m/s"),
@@ -129,6 +143,36 @@ class AnalysisConfig(_Section):
         return self
 
 
+class EstimateConfig(_Section):
+    """Station pairs, solver terms and filter design of the estimation."""
+
+    receiver_radius_m: float = Field(
+        60.0, gt=0.0, description="receiver pairs: neighbours within this distance (just above the line spacing)",
+        json_schema_extra=_unit("m"),
+    )
+    source_radius_m: float = Field(
+        90.0, gt=0.0, description="source pairs: neighbours within this distance", json_schema_extra=_unit("m"))
+    bridge_components: bool = Field(
+        True, description="join a station graph that falls apart with its nearest cross-component pairs",
+        json_schema_extra=_unit("switch"),
+    )
+    offset_bin_m: float = Field(50.0, gt=0.0, description="offset bin of the amplitude solve's offset term",
+                                json_schema_extra=_unit("m"))
+    cmp_bin_m: float = Field(0.0, ge=0.0, description="CMP bin of the optional CMP term; 0 leaves it out",
+                             json_schema_extra=_unit("m"))
+    min_pairs: int = Field(3, ge=1, description="stations with fewer pairs get the identity filter",
+                           json_schema_extra=_unit("pairs"))
+    phase_method: Literal["laplacian", "eigen"] = Field(
+        "laplacian", description="phase solve: pinned connection Laplacian or leading eigenvector",
+        json_schema_extra=_unit("choice"),
+    )
+    filter_length_s: float = Field(0.4, gt=0.0, description="longest station filter in time", json_schema_extra=_unit("s"))
+    filter_lead_s: float = Field(0.064, ge=0.0, description="filter time before zero (negative delays)",
+                                 json_schema_extra=_unit("s"))
+    shot_group_traces: int = Field(
+        4000, ge=100, description="traces per statistics task (whole shots or receivers)", json_schema_extra=_unit("traces"))
+
+
 class SurveyConfig(_Section):
     """Everything a survey run can be told. Sections mirror the stages."""
 
@@ -136,4 +180,5 @@ class SurveyConfig(_Section):
     geometry: GeometryConfig = Field(default_factory=GeometryConfig, description="stations, shots and geometry checks")
     qc: QcConfig = Field(default_factory=QcConfig, description="trace QC policies and exclusions")
     analysis: AnalysisConfig = Field(default_factory=AnalysisConfig, description="analysis window and band")
+    estimate: EstimateConfig = Field(default_factory=EstimateConfig, description="station pairs, solves and filters")
 

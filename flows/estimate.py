@@ -1,0 +1,370 @@
+"""Estimation, part 1: windowed spectra and per-swath statistics on Dask.
+
+Spectra are chunk tasks (one chunk of traces in, one chunk of spectra out,
+then a done-flag). Statistics are computed per swath from groups of whole
+shots (receiver pairs), whole receivers (source pairs, also between two
+swaths) and chunks (log power), summed in a fixed tree order so reruns are
+bit-identical, and written whole under ``stats/<swath>`` or
+``stats/<a>+<b>``. Each stage is keyed by a fingerprint of its inputs and
+parameters; a rerun skips what is done and redoes what a change affects.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import logging
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+
+from descatter.storage.atomic import read_json, write_json_atomic
+from descatter.storage.checkpoints import CHECKPOINTS, Checkpoints
+from descatter.storage.estimation import (
+    create_spectra, has_stats, read_spectra, spectra_shape, write_spectra_chunk, write_stats,
+)
+from descatter.storage.faults import fault_point
+from descatter.storage.runlog import RunLog
+from descatter.storage.stations import read_qc_flags, read_stations, read_swath_geometry
+from descatter.storage.store import SurveyStore, SwathRecord
+from descatter.tasks.config import SurveyConfig
+from descatter.tasks.log_power import log_power, log_power_sums, offset_bins
+from descatter.tasks.pairs import (
+    bridge_components, graph_components, neighbour_pairs, receiver_pair_sums, source_pair_sums,
+    source_pair_sums_between,
+)
+from descatter.tasks.spectra import band_frequencies, windowed_spectra
+from descatter.tasks.statistics import LogPowerSums, PairSums
+
+log = logging.getLogger(__name__)
+
+STAGE_VERSION = 1
+Progress = Callable[[str, int, int], None]  # (stage, done, total)
+
+
+def _fingerprint(doc: dict) -> str:
+    return hashlib.blake2b(json.dumps(doc, sort_keys=True, default=str).encode(), digest_size=16).hexdigest()
+
+
+def spectra_params(config: SurveyConfig, *, dt_s: float) -> dict:
+    """Plain numbers for the spectra kernel, from the config."""
+    a = config.analysis
+    n_win = int(round((a.window_end_s - a.window_start_s) / dt_s)) + 1
+    n_fft = a.n_fft or int(2 ** np.ceil(np.log2(max(n_win, 8))))
+    v = np.asarray(a.velocity, float)
+    return {
+        "dt_s": dt_s, "window_s": (a.window_start_s, a.window_end_s), "taper_s": a.taper_s,
+        "stretch_mute": a.stretch_mute, "n_fft": n_fft, "band_hz": tuple(a.band_hz),
+        "moveout": a.moveout, "lmo_velocity_mps": a.lmo_velocity_mps,
+        "velocity_t0_s": v[:, 0].tolist(), "velocity_vrms_mps": v[:, 1].tolist(),
+    }
+
+
+def live_mask(flags: np.ndarray, config: SurveyConfig, station_index: np.ndarray) -> np.ndarray:
+    """Traces the estimation uses: no QC flag whose policy is exclude, and a station."""
+    return ((flags & np.uint16(config.qc.exclude_bits())) == 0) & (station_index >= 0)
+
+
+# -- spectra -------------------------------------------------------------
+
+def spectra_chunk(store_path: str, swath: str, chunk: int, start: int, stop: int, params: dict,
+                  fingerprint: str) -> dict:
+    """One chunk of traces -> one chunk of windowed spectra, then its flag."""
+    ckpt = Checkpoints(store_path, "spectra", swath, fingerprint)
+    if ckpt.is_done(chunk):
+        return {"chunk": chunk, "resumed": True, "traces": stop - start, "seconds": 0.0}
+    t0 = time.perf_counter()
+    store = SurveyStore.open(store_path)
+    traces = store.array(swath, "traces")[start:stop]
+    offset = store.array(swath, "geometry/offset")[start:stop]
+    delay_s = store.array(swath, "headers/delay_ms")[start:stop] * 1e-3
+    p = dict(params)
+    spectra = windowed_spectra(
+        traces, offset_m=offset, delay_s=delay_s, dt_s=p["dt_s"],
+        velocity_t0_s=np.asarray(p["velocity_t0_s"]), velocity_vrms_mps=np.asarray(p["velocity_vrms_mps"]),
+        window_s=p["window_s"], taper_s=p["taper_s"], stretch_mute=p["stretch_mute"], n_fft=p["n_fft"],
+        band_hz=p["band_hz"], moveout=p["moveout"], lmo_velocity_mps=p["lmo_velocity_mps"],
+    )
+    write_spectra_chunk(store_path, swath, start, spectra)
+    ckpt.mark_done(chunk, {"seconds": time.perf_counter() - t0})
+    return {"chunk": chunk, "resumed": False, "traces": stop - start, "seconds": time.perf_counter() - t0}
+
+
+# -- statistics tasks (run on workers) ------------------------------------
+
+def _swath_inputs(store_path: str, swath: str, exclude_bits: int):
+    store = SurveyStore.open(store_path)
+    g = read_swath_geometry(store, swath, ["shot", "source_index", "receiver_index", "offset"])
+    flags = read_qc_flags(store, swath)
+    live = ((flags & np.uint16(exclude_bits)) == 0) & (g["source_index"] >= 0) & (g["receiver_index"] >= 0)
+    return g, live
+
+
+def receiver_pairs_task(store_path: str, swath: str, shots: np.ndarray, pairs: np.ndarray,
+                        exclude_bits: int) -> PairSums:
+    g, live = _swath_inputs(store_path, swath, exclude_bits)
+    rows = np.flatnonzero(np.isin(g["shot"], shots) & live)
+    spectra = read_spectra(store_path, swath, rows)
+    return receiver_pair_sums(spectra, shot=g["shot"][rows], receiver=g["receiver_index"][rows], pairs=pairs)
+
+
+def source_pairs_task(store_path: str, swath: str, receivers: np.ndarray, pairs: np.ndarray,
+                      exclude_bits: int) -> PairSums:
+    g, live = _swath_inputs(store_path, swath, exclude_bits)
+    rows = np.flatnonzero(np.isin(g["receiver_index"], receivers) & live)
+    spectra = read_spectra(store_path, swath, rows)
+    return source_pair_sums(spectra, shot_source=g["source_index"][rows], receiver=g["receiver_index"][rows],
+                            pairs=pairs)
+
+
+def source_pairs_between_task(store_path: str, swath_a: str, swath_b: str, receivers: np.ndarray,
+                              pairs: np.ndarray, exclude_bits: int) -> PairSums:
+    sides = []
+    for swath in (swath_a, swath_b):
+        g, live = _swath_inputs(store_path, swath, exclude_bits)
+        rows = np.flatnonzero(np.isin(g["receiver_index"], receivers) & live)
+        sides.append((read_spectra(store_path, swath, rows), g["source_index"][rows], g["receiver_index"][rows]))
+    (sa, ia, ra), (sb, ib, rb) = sides
+    return source_pair_sums_between(sa, sb, shot_source_a=ia, receiver_a=ra, shot_source_b=ib, receiver_b=rb,
+                                    pairs=pairs)
+
+
+def log_power_task(store_path: str, swath: str, start: int, stop: int, sizes: dict, offset_bin_m: float,
+                   exclude_bits: int) -> LogPowerSums:
+    g, live = _swath_inputs(store_path, swath, exclude_bits)
+    spectra = read_spectra(store_path, swath, slice(start, stop))
+    sl = slice(start, stop)
+    return log_power_sums(
+        log_power(spectra), source=np.maximum(g["source_index"][sl], 0),
+        receiver=np.maximum(g["receiver_index"][sl], 0),
+        offset_bin=offset_bins(g["offset"][sl], bin_m=offset_bin_m),
+        n_sources=sizes["sources"], n_receivers=sizes["receivers"], n_offset_bins=sizes["offset_bins"],
+        live=live[sl],
+    )
+
+
+def add_parts(a, b):
+    return a + b
+
+
+def write_stats_task(store_path: str, key: str, group: str, total, fingerprint: str) -> dict:
+    """Write a reduced statistic and its done-flag; return a small summary."""
+    if isinstance(total, PairSums):
+        arrays = total.to_arrays()
+        summary = {"pairs": int(len(total.pairs)), "products": int(total.count.sum())}
+    else:
+        arrays = lps_to_arrays(total)
+        summary = {"traces": int(total.n_traces)}
+    write_stats(store_path, key, group, arrays)
+    Checkpoints(store_path, "stats", key, fingerprint).mark_done(_GROUP_CHUNK[group], summary)
+    return summary
+
+
+_GROUP_CHUNK = {"receiver_pairs": 0, "source_pairs": 1, "log_power": 2}
+
+
+def lps_to_arrays(s: LogPowerSums) -> dict[str, np.ndarray]:
+    out = {"sum_sq": s.sum_sq, "n_traces": np.array(s.n_traces, np.int64)}
+    for kind, v in s.sums.items():
+        out[f"sums.{kind}"] = v
+        out[f"counts.{kind}"] = s.counts[kind]
+    for key, v in s.cross.items():
+        out["cross." + key.replace("|", "-")] = v
+    return out
+
+
+def lps_from_arrays(a: dict[str, np.ndarray]) -> LogPowerSums:
+    sums = {k.split(".", 1)[1]: v for k, v in a.items() if k.startswith("sums.")}
+    counts = {k.split(".", 1)[1]: v for k, v in a.items() if k.startswith("counts.")}
+    cross = {k.split(".", 1)[1].replace("-", "|"): v for k, v in a.items() if k.startswith("cross.")}
+    return LogPowerSums(sums, counts, cross, a["sum_sq"], int(np.asarray(a["n_traces"]).reshape(-1)[0]))
+
+
+def tree_sum(client, parts: list):
+    """Sum futures pairwise in a fixed order: ((p0+p1)+(p2+p3))+..., the
+    same tree whatever finishes first, so results are bit-identical."""
+    while len(parts) > 1:
+        nxt = [client.submit(add_parts, parts[i], parts[i + 1], pure=False) for i in range(0, len(parts) - 1, 2)]
+        if len(parts) % 2:
+            nxt.append(parts[-1])
+        parts = nxt
+    return parts[0]
+
+
+def _groups(labels: np.ndarray, target: int) -> list[np.ndarray]:
+    """Split the distinct labels (shots or receivers) into consecutive groups
+    of about ``target`` traces each."""
+    ids, counts = np.unique(labels, return_counts=True)
+    edges = np.searchsorted(np.cumsum(counts), np.arange(target, counts.sum(), target))
+    return [g for g in np.split(ids, np.unique(edges + 1)) if g.size]
+
+
+@dataclass
+class StatsReport:
+    spectra_chunks: int = 0
+    spectra_resumed: int = 0
+    stats_computed: list[str] = field(default_factory=list)
+    stats_skipped: list[str] = field(default_factory=list)
+    bridges: list[dict] = field(default_factory=list)
+    components: dict = field(default_factory=dict)
+    freqs_hz: np.ndarray | None = None
+    seconds: float = 0.0
+
+
+def _stage_marker(store: SurveyStore, stage: str, swath: str) -> Path:
+    return store.path / CHECKPOINTS / stage / swath / "stage.json"
+
+
+def _marker_matches(store: SurveyStore, stage: str, swath: str, fingerprint: str) -> bool:
+    marker = _stage_marker(store, stage, swath)
+    return marker.is_file() and read_json(marker).get("fingerprint") == fingerprint
+
+
+def run_spectra(store: SurveyStore, records: list[SwathRecord], params: dict, n_freq: int, *, client,
+                runlog: RunLog, report: StatsReport, progress: Progress | None) -> dict[str, str]:
+    """Spectra of every swath; returns each swath's spectra fingerprint."""
+    from distributed import as_completed
+
+    fps, futures = {}, []
+    total = sum(r.n_traces for r in records)
+    for rec in records:
+        fp = _fingerprint({"v": STAGE_VERSION, "swath": rec.fingerprint, "params": params})
+        fps[rec.name] = fp
+        if not (_marker_matches(store, "spectra", rec.name, fp)
+                and spectra_shape(store, rec.name) == (rec.n_traces, n_freq)):
+            create_spectra(store, rec.name, n_traces=rec.n_traces, n_freq=n_freq, chunk_traces=rec.chunk_traces)
+            Checkpoints(store.path, "spectra", rec.name, fp).clear()
+            write_json_atomic(_stage_marker(store, "spectra", rec.name), {"fingerprint": fp})
+        for chunk, (a, b) in enumerate(rec.chunk_bounds()):
+            futures.append(client.submit(spectra_chunk, str(store.path), rec.name, chunk, a, b, params, fp,
+                                         key=f"spectra-{rec.name}-{chunk}-{fp[:8]}", pure=False))
+    runlog.write("spectra", "start", swaths=[r.name for r in records], chunks=len(futures))
+    done = 0
+    for fut in as_completed(futures):
+        s = fut.result()
+        done += s["traces"]
+        report.spectra_chunks += 1
+        report.spectra_resumed += s["resumed"]
+        runlog.write("spectra", "batch", chunk=s["chunk"], traces=s["traces"], seconds=round(s["seconds"], 4),
+                     resumed=s["resumed"])
+        if progress:
+            progress("spectra", done, total)
+        if not s["resumed"]:
+            fault_point("spectra")
+    runlog.write("spectra", "end", chunks=report.spectra_chunks, resumed=report.spectra_resumed)
+    return fps
+
+
+def allowed_pairs(x: np.ndarray, y: np.ndarray, *, radius_m: float, bridge: bool, kind: str,
+                  report: StatsReport) -> np.ndarray:
+    """Neighbour pairs within the radius, plus bridges between components."""
+    pairs = neighbour_pairs(x, y, radius_m=radius_m)
+    n_comp, _ = graph_components(len(x), pairs)
+    entry = {"stations": len(x), "pairs": len(pairs), "components_before": n_comp, "bridged": 0}
+    if n_comp > 1 and bridge:
+        extra, bridges = bridge_components(x, y, pairs)
+        pairs = np.unique(np.concatenate([pairs, extra]), axis=0)
+        for b in bridges:
+            report.bridges.append({"kind": kind, **b})
+        entry["bridged"] = int(sum(b.get("bridged", True) for b in bridges))
+        entry["components_after"] = graph_components(len(x), pairs)[0]
+    else:
+        entry["components_after"] = n_comp
+    report.components[kind] = entry
+    return pairs
+
+
+def _subset(pairs: np.ndarray, members: np.ndarray) -> np.ndarray:
+    return pairs[np.isin(pairs, members).all(axis=1)]
+
+
+def _between(pairs: np.ndarray, a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    in_a, in_b = np.isin(pairs, a), np.isin(pairs, b)
+    return pairs[(in_a[:, 0] & in_b[:, 1]) | (in_b[:, 0] & in_a[:, 1])]
+
+
+def run_statistics(store: SurveyStore, config: SurveyConfig, *, client, runlog: RunLog,
+                   progress: Progress | None = None) -> StatsReport:
+    """Spectra and every swath's (and swath pair's) statistics, resumable."""
+    t0 = time.perf_counter()
+    report = StatsReport()
+    records = store.manifest()
+    params = spectra_params(config, dt_s=store.sample_interval_s)
+    freqs, _ = band_frequencies(n_fft=params["n_fft"], dt_s=params["dt_s"], band_hz=params["band_hz"])
+    report.freqs_hz = freqs
+    spectra_fps = run_spectra(store, records, params, len(freqs), client=client, runlog=runlog,
+                              report=report, progress=progress)
+    est = config.estimate
+    src, rcv = read_stations(store, "sources"), read_stations(store, "receivers")
+    rpairs = allowed_pairs(rcv["x"], rcv["y"], radius_m=est.receiver_radius_m,
+                           bridge=est.bridge_components, kind="receivers", report=report)
+    spairs = allowed_pairs(src["x"], src["y"], radius_m=est.source_radius_m,
+                           bridge=est.bridge_components, kind="sources", report=report)
+    exclude_bits = config.qc.exclude_bits()
+    geoms = {r.name: read_swath_geometry(store, r.name, ["shot", "source_index", "receiver_index", "offset"])
+             for r in records}
+    jobs = []  # (key, group, fingerprint, future of the reduced statistic)
+    for i, rec in enumerate(records):
+        g = geoms[rec.name]
+        srcs = np.unique(g["source_index"][g["source_index"] >= 0])
+        rcvs = np.unique(g["receiver_index"][g["receiver_index"] >= 0])
+        rp, sp = _subset(rpairs, rcvs), _subset(spairs, srcs)
+        sizes = {"sources": int(srcs.max()) + 1, "receivers": int(rcvs.max()) + 1,
+                 "offset_bins": int(offset_bins(g["offset"].max(), bin_m=est.offset_bin_m)) + 1}
+        fp = _fingerprint({"v": STAGE_VERSION, "spectra": spectra_fps[rec.name], "exclude": exclude_bits,
+                           "rp": hashlib.blake2b(rp.tobytes()).hexdigest(), "sp": hashlib.blake2b(sp.tobytes()).hexdigest(),
+                           "offset_bin_m": est.offset_bin_m, "sizes": sizes, "group": est.shot_group_traces})
+        ckpt = Checkpoints(store.path, "stats", rec.name, fp)
+        wanted = []
+        if not ckpt.is_done(0):
+            rp_f = client.scatter(rp)
+            parts = [client.submit(receiver_pairs_task, str(store.path), rec.name, shots, rp_f, exclude_bits,
+                                   pure=False) for shots in _groups(g["shot"], est.shot_group_traces)]
+            wanted.append(("receiver_pairs", tree_sum(client, parts)))
+        if not ckpt.is_done(1):
+            sp_f = client.scatter(sp)
+            parts = [client.submit(source_pairs_task, str(store.path), rec.name, recv, sp_f, exclude_bits,
+                                   pure=False) for recv in _groups(g["receiver_index"][g["receiver_index"] >= 0],
+                                                                   est.shot_group_traces)]
+            wanted.append(("source_pairs", tree_sum(client, parts)))
+        if not ckpt.is_done(2):
+            parts = [client.submit(log_power_task, str(store.path), rec.name, a, b, sizes, est.offset_bin_m,
+                                   exclude_bits, pure=False) for a, b in rec.chunk_bounds()]
+            wanted.append(("log_power", tree_sum(client, parts)))
+        for group, total in wanted:
+            jobs.append((rec.name, group, client.submit(write_stats_task, str(store.path), rec.name, group,
+                                                        total, fp, pure=False)))
+        (report.stats_computed if wanted else report.stats_skipped).append(rec.name)
+        # source pairs between this swath and each earlier one (owned by this one)
+        for prev in records[:i]:
+            gp = geoms[prev.name]
+            between = _between(spairs, np.unique(gp["source_index"][gp["source_index"] >= 0]), srcs)
+            common = np.intersect1d(gp["receiver_index"][gp["receiver_index"] >= 0], rcvs)
+            if not len(between) or not len(common):
+                continue
+            key = f"{prev.name}+{rec.name}"
+            fpx = _fingerprint({"v": STAGE_VERSION, "a": spectra_fps[prev.name], "b": spectra_fps[rec.name],
+                                "exclude": exclude_bits, "pairs": hashlib.blake2b(between.tobytes()).hexdigest(),
+                                "group": est.shot_group_traces})
+            if Checkpoints(store.path, "stats", key, fpx).is_done(1):
+                report.stats_skipped.append(key)
+                continue
+            bf = client.scatter(between)
+            parts = [client.submit(source_pairs_between_task, str(store.path), prev.name, rec.name, recv, bf,
+                                   exclude_bits, pure=False) for recv in _groups(common, est.shot_group_traces)]
+            jobs.append((key, "source_pairs", client.submit(write_stats_task, str(store.path), key, "source_pairs",
+                                                            tree_sum(client, parts), fpx, pure=False)))
+            report.stats_computed.append(key)
+    runlog.write("stats", "start", jobs=len(jobs))
+    for n, (key, group, fut) in enumerate(jobs, 1):
+        summary = fut.result()
+        runlog.write("stats", "batch", key=key, group=group, **summary)
+        if progress:
+            progress("statistics", n, len(jobs))
+        fault_point("stats")
+    runlog.write("stats", "end", computed=report.stats_computed, skipped=report.stats_skipped)
+    report.seconds = time.perf_counter() - t0
+    return report
