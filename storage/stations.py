@@ -19,7 +19,7 @@ import numpy as np
 import zarr
 from zarr.codecs import BloscCodec
 
-from descatter.storage.store import SWATHS, SurveyStore
+from descatter.storage.store import SWATHS, SurveyStore, writer_chunk
 
 KINDS = ("sources", "receivers")
 STATION_FIELDS = {"key": "int64", "x": "float64", "y": "float64", "elevation": "float64"}
@@ -75,7 +75,7 @@ def write_swath_geometry(store: SurveyStore, swath: str, arrays: dict[str, np.nd
     group = zarr.open_group(str(store.path), mode="r+")[f"{SWATHS}/{swath}"].require_group("geometry")
     for field, dtype in GEOMETRY_FIELDS.items():
         values = np.asarray(arrays[field], dtype=dtype)
-        arr = group.create_array(field, shape=values.shape, chunks=(max(1, min(chunk_traces, len(values))),),
+        arr = group.create_array(field, shape=values.shape, chunks=(writer_chunk(chunk_traces, len(values)),),
                                  dtype=dtype, compressors=_CODEC, fill_value=0, overwrite=True,
                                  dimension_names=["trace"])
         arr[:] = values

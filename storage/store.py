@@ -44,6 +44,11 @@ MANIFEST_NAME = "manifest.json"
 MANIFEST_FORMAT = "descatter-manifest"
 
 SWATHS = "swaths"
+# Store every chunk, also all-fill ones: skipping them costs a full compare
+# per chunk (measured: 21 ms -> 8.5 ms per 6 MB chunk without it) and would
+# make a written chunk indistinguishable from a missing one. A runtime
+# setting, not stored metadata, so it is set wherever storage is imported.
+zarr.config.set({"array.write_empty_chunks": True})
 
 # Header bytes are kept raw; they compress well with zstd and are read rarely.
 _HEADER_CODEC = BloscCodec(cname="zstd", clevel=3, shuffle="noshuffle")
@@ -102,6 +107,16 @@ class SwathRecord:
     def chunk_bounds(self) -> list[tuple[int, int]]:
         """``[(start, stop), ...]`` of every chunk of this swath's per-trace arrays."""
         return chunk_bounds(self.n_traces, self.chunk_traces)
+
+
+def writer_chunk(chunk_traces: int, n_traces: int) -> int:
+    """Chunk length of per-trace arrays written whole by the single writer
+    (decoded headers, geometry): a multiple of the task chunk, so a task's
+    trace range never straddles two of them more than it must, and large
+    enough that zarr's per-chunk cost (about 2.5 ms, measured) is paid
+    rarely: 16 header fields of a 50,000-trace swath took 2.0 s in chunks of
+    1,000 traces."""
+    return max(1, min(n_traces, chunk_traces * max(1, 65536 // chunk_traces)))
 
 
 def chunk_bounds(n_traces: int, chunk_traces: int) -> list[tuple[int, int]]:
@@ -285,7 +300,7 @@ class SurveyStore:
         headers = group.require_group("headers")
         for field, dtype in header_dtypes.items():
             headers.create_array(
-                field, shape=(n_traces,), chunks=(chunks,), dtype=dtype,
+                field, shape=(n_traces,), chunks=(writer_chunk(chunks, n_traces),), dtype=dtype,
                 compressors=(_HEADER_CODEC,), fill_value=0, overwrite=True,
                 dimension_names=["trace"],
             )
