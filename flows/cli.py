@@ -147,6 +147,73 @@ def ingest(
         )
 
 
+# -- estimate -------------------------------------------------------------
+
+@app.command()
+def estimate(
+    store: Path = typer.Argument(..., help="survey store"),
+    config: Optional[Path] = typer.Option(None, "--config", help="survey config (default: the one kept at ingest)"),
+    workers: Optional[int] = typer.Option(None, "--workers", help="local worker processes (default: one per core)"),
+    cluster: str = typer.Option("local", "--cluster", help="local, threads, or tcp://HOST:PORT"),
+    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB"),
+) -> None:
+    """Measure every station's near-surface filter: spectra, pair statistics, global solve."""
+    from descatter.flows.cluster import dask_client
+    from descatter.flows.solve import estimate_survey
+    from descatter.storage.config_file import config_for_store
+
+    cfg = config_for_store(store, config)
+    with _progress("estimate") as bar, dask_client(cluster, workers=workers, memory_limit=memory_limit) as client:
+        tasks: dict[str, int] = {}
+
+        def progress(stage: str, done: int, total: int) -> None:
+            if stage not in tasks:
+                tasks[stage] = bar.add_task(stage, total=total)
+            bar.update(tasks[stage], completed=done, total=total)
+
+        result = estimate_survey(store, cfg, client=client, progress=progress)
+    s = result["summary"]
+    console.print(f"solution {result['solution']} in {result['seconds']:.1f} s: "
+                  f"{s['source_components']} source and {s['receiver_components']} receiver component(s); "
+                  f"amplitude residual {s['amplitude_residual_rms']:.3f} (log power, rms)")
+    for w in result["warnings"]:
+        console.print(f"[yellow]warning:[/] {w}", highlight=False)
+
+
+@app.command()
+def solutions(store: Path = typer.Argument(..., help="survey store")) -> None:
+    """List the store's solutions (the current one marked)."""
+    from descatter.storage.estimation import list_solutions, solution_attrs
+    from descatter.storage.store import SurveyStore
+
+    s = SurveyStore.open(store)
+    current = s.attrs.get("current_solution")
+    ids = list_solutions(s)
+    if not ids:
+        console.print(f"{store}: no solution yet (run 'descatter estimate')")
+    for sid in ids:
+        a = solution_attrs(s, sid)
+        an, es = a["config"]["analysis"], a["config"]["estimate"]
+        console.print(
+            f"{'*' if sid == current else ' '} {sid}  {a['created']}  band {an['band_hz'][0]:g}-{an['band_hz'][1]:g} Hz, "
+            f"window {an['window_start_s']:g}-{an['window_end_s']:g} s, radii {es['receiver_radius_m']:g}/"
+            f"{es['source_radius_m']:g} m, {len(a['summary']['statistics'])} statistics keys", highlight=False)
+
+
+@app.command()
+def stations(
+    store: Path = typer.Argument(..., help="survey store"),
+    out: Path = typer.Argument(..., help="stations.csv (or filters.npz with --filters)"),
+    filters: bool = typer.Option(False, "--filters", help="write station responses and filters (.npz)"),
+    solution: Optional[str] = typer.Option(None, "--solution", help="solution id (default: the current one)"),
+) -> None:
+    """Write a solution's stations (attributes as CSV, or filters as .npz)."""
+    from descatter.flows.stations_table import write_filters, write_station_table
+
+    sid, n = (write_filters if filters else write_station_table)(store, out, solution=solution)
+    console.print(f"wrote {n} station(s) of solution {sid} to {out}")
+
+
 # -- info -----------------------------------------------------------------
 
 @app.command()

@@ -1,8 +1,8 @@
 """``descatter demo``: every stage that exists, on a synthetic survey.
 
-synth -> DIR/survey, ingest -> DIR/store.zarr, info, export -> DIR/export.sgy,
-and a round-trip check of the export against the store with segyio as an
-independent reader.
+synth -> DIR/survey, ingest -> DIR/store.zarr, estimate (station filters,
+DIR/stations.csv), info, export -> DIR/export.sgy, and a round-trip check
+of the export against the store with segyio as an independent reader.
 """
 
 from __future__ import annotations
@@ -13,6 +13,8 @@ from pathlib import Path
 from descatter.flows.cluster import dask_client
 from descatter.flows.export import export_segy
 from descatter.flows.ingest import ingest_swaths
+from descatter.flows.solve import estimate_survey
+from descatter.flows.stations_table import write_station_table
 from descatter.flows.summary import store_summary
 from descatter.flows.synth import write_synthetic_survey
 from descatter.storage.config_file import load_config
@@ -23,12 +25,13 @@ from descatter.tasks.errors import DescatterError
 def run_demo(out: str | Path, *, size: str = "demo", workers: int | None = None, console, progress) -> dict:
     out = Path(out)
     survey_dir, store, exported = out / "survey", out / "store.zarr", out / "export.sgy"
+    stations = out / "stations.csv"
     t0 = time.perf_counter()
-    console.print(f"[bold]1/4 synth[/] a {size} scattering survey into {survey_dir}")
+    console.print(f"[bold]1/5 synth[/] a {size} scattering survey into {survey_dir}")
     synth = write_synthetic_survey(survey_dir, scenario="scatter", size=size, seed=7)
     console.print(f"    {len(synth.files)} swath files, {synth.traces} traces")
 
-    console.print(f"[bold]2/4 ingest[/] into {store}")
+    console.print(f"[bold]2/5 ingest[/] into {store}")
     cfg = load_config(synth.config)
     with progress("ingest") as bar, dask_client("local", workers=workers) as client:
         tasks: dict[str, int] = {}
@@ -39,12 +42,19 @@ def run_demo(out: str | Path, *, size: str = "demo", workers: int | None = None,
             bar.update(tasks[swath], completed=done)
 
         report = ingest_swaths(store, synth.files, cfg, client=client, progress=on_progress)
-    console.print(f"    added {len(report.added)}, already there {len(report.skipped)}")
+        console.print(f"    added {len(report.added)}, already there {len(report.skipped)}")
+        console.print("[bold]3/5 estimate[/] station filters from pair statistics over all shots")
+        est = estimate_survey(store, cfg, client=client,
+                              progress=lambda stage, done, total: on_progress(stage, done, total))
+    write_station_table(store, stations)
+    s = est["summary"]
+    console.print(f"    solution {est['solution']}: {s['source_components']} source and "
+                  f"{s['receiver_components']} receiver component(s); station table {stations}")
 
-    console.print("[bold]3/4 info[/]")
+    console.print("[bold]4/5 info[/]")
     console.print(store_summary(store), highlight=False, soft_wrap=True)
 
-    console.print(f"[bold]4/4 export[/] to {exported}, then read it back with segyio")
+    console.print(f"[bold]5/5 export[/] to {exported}, then read it back with segyio")
     export_segy(store, exported)
     mismatches = compare_with_store(exported, store)
     if mismatches:
@@ -55,7 +65,8 @@ def run_demo(out: str | Path, *, size: str = "demo", workers: int | None = None,
         f"\n[bold]done[/] in {seconds:.0f} s. Look at:\n"
         f"  survey and truth   {survey_dir}\n"
         f"  survey store       {store}   (descatter info {store})\n"
+        f"  station table      {stations}\n"
         f"  exported SEG-Y     {exported}\n"
         "Results must be reviewed by a qualified geophysicist before they are used."
     )
-    return {"survey": survey_dir, "store": store, "export": exported, "seconds": seconds}
+    return {"survey": survey_dir, "store": store, "export": exported, "stations": stations, "seconds": seconds}

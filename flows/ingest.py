@@ -334,6 +334,8 @@ def _commit(store: SurveyStore, plan: _Plan, digests: dict[int, str], config: Su
     if not store.swath_names():
         store.set_attrs(n_samples=info.n_samples, sample_interval_s=info.dt_s,
                         ingest_config=config.ingest.model_dump(mode="json"))
+    # later stages reuse the config given at ingest unless told otherwise
+    store.set_attrs(config=config.model_dump(mode="json"))
     store.commit_swath(SwathRecord(
         name=plan.name, file=str(Path(info.path).resolve()), size=info.size,
         fingerprint=h.hexdigest(), quick_fingerprint=plan.quick, n_traces=info.n_traces,

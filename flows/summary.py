@@ -54,6 +54,7 @@ def store_summary(path: str | Path) -> str:
                 f"{r.byte_order}-endian  {r.size / 1e6:9.1f} MB  {r.file}"
             )
         lines += _geometry_lines(store)
+        lines += _solution_lines(store)
         counts = qc_counts(store)
         lines.append("qc flags  " + ("none" if not any(counts.values()) else ""))
         for name, c in counts.items():
@@ -91,3 +92,24 @@ def _geometry_lines(store: SurveyStore) -> list[str]:
         f"fold      max {a['fold_max']:.0f}, mean {a['fold_mean']:.1f}, median {a['fold_median']:.0f} "
         f"in {a['n_bins']:.0f} CMP bins of {a['bin_inline_m']:g} x {a['bin_crossline_m']:g} m",
     ]
+
+
+def _solution_lines(store: SurveyStore) -> list[str]:
+    from descatter.storage.estimation import list_solutions, solution_attrs
+
+    sid = store.attrs.get("current_solution")
+    if not sid or sid not in list_solutions(store):
+        return ["solution  none yet (run 'descatter estimate')"]
+    a = solution_attrs(store, sid)
+    s, c = a["summary"], a.get("components", {})
+    out = [f"solution  {sid} (current of {len(list_solutions(store))})"]
+    for kind, key in (("receivers", "receiver"), ("sources", "source")):
+        g = c.get(kind, {})
+        out.append(
+            f"  {kind}: {g.get('pairs', 0)} neighbour pairs, {g.get('components_before', '?')} component(s) "
+            f"before bridging, {s[f'{key}_components']} solved; {s[f'{key}_identity']} identity filter(s); "
+            f"phase residual {s[f'{key}_phase_residual']:.4f}")
+    out.append(f"  amplitude residual {s['amplitude_residual_rms']:.4f} (rms of log power)")
+    for w in a.get("warnings", []):
+        out.append(f"  warning: {w}")
+    return out

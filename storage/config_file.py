@@ -112,3 +112,16 @@ def dump_config(config: SurveyConfig) -> str:
     out: list[str] = []
     _walk(config, "", out, comments=False)
     return "\n".join(out).lstrip("\n") + "\n"
+
+
+def config_for_store(store_path: str | Path, path: str | Path | None) -> SurveyConfig:
+    """The config a stage runs with: the file given, else the one kept in the
+    store at the last ingest, else the defaults."""
+    if path is not None:
+        return load_config(path)
+    from descatter.storage.store import SurveyStore
+
+    stored = SurveyStore.open(store_path).attrs.get("config")
+    if stored:
+        return parse_config(stored, source=f"{store_path} (config kept at ingest)")
+    return SurveyConfig()

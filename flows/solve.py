@@ -1,0 +1,202 @@
+"""Estimation, part 2: the global solve and the station filters.
+
+Statistics of every swath (and swath pair) are summed in manifest order;
+the amplitude solve runs once for all frequencies; the phase solves run in
+frequency blocks mapped across the workers; the station filters and their
+attributes become a solution under ``solutions/<id>``.
+"""
+
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from descatter.flows.estimate import lps_from_arrays
+from descatter.storage.estimation import has_stats, read_stats
+from descatter.storage.stations import read_stations
+from descatter.storage.store import SurveyStore
+from descatter.tasks import station_filters as sf
+from descatter.tasks.amplitude_solve import amplitude_solve
+from descatter.tasks.config import SurveyConfig
+from descatter.tasks.phase_sync import concat_phase_solutions, phase_sync
+from descatter.tasks.statistics import LogPowerSums, PairSums
+
+log = logging.getLogger(__name__)
+
+FREQ_BLOCK = 8  # frequencies per phase-solve task
+
+
+@dataclass
+class Totals:
+    receiver_pairs: PairSums
+    source_pairs: PairSums
+    log_power: LogPowerSums
+    keys: list[str] = field(default_factory=list)
+
+
+def load_totals(store: SurveyStore) -> Totals:
+    """Sum every swath's statistics (and swath pairs') in manifest order."""
+    names = store.swath_names()
+    rp = sp = lp = None
+    keys = []
+    for i, name in enumerate(names):
+        r = PairSums.from_arrays(read_stats(store.path, name, "receiver_pairs"))
+        s = PairSums.from_arrays(read_stats(store.path, name, "source_pairs"))
+        l = lps_from_arrays(read_stats(store.path, name, "log_power"))
+        keys.append(name)
+        for prev in names[:i]:
+            key = f"{prev}+{name}"
+            if has_stats(store.path, key, "source_pairs"):
+                s = s + PairSums.from_arrays(read_stats(store.path, key, "source_pairs"))
+                keys.append(key)
+        rp = r if rp is None else rp + r
+        sp = s if sp is None else sp + s
+        lp = l if lp is None else lp + l
+    return Totals(rp, sp, lp, keys)
+
+
+def _phase_weight(p: PairSums) -> np.ndarray:
+    """Coherence x shot count: pairs seen by many shots, coherently, count most."""
+    return p.coherence() * p.count[:, None]
+
+
+def _phases(client, pairs: PairSums, n_stations: int, method: str):
+    weight = _phase_weight(pairs)
+    n_freq = pairs.n_freq
+    blocks = [slice(a, min(a + FREQ_BLOCK, n_freq)) for a in range(0, n_freq, FREQ_BLOCK)]
+    if client is None or len(blocks) == 1:
+        return phase_sync(pairs.pairs, pairs.cross, weight, n_stations=n_stations, method=method)
+    p_f, c_f, w_f = client.scatter([pairs.pairs, pairs.cross, weight])
+    futures = [client.submit(phase_sync, p_f, c_f, w_f, n_stations=n_stations, method=method, columns=b,
+                             pure=False) for b in blocks]
+    return concat_phase_solutions(client.gather(futures))
+
+
+def station_attributes(kind: str, amp_term: np.ndarray, phase, pairs: PairSums, n: int, freqs: np.ndarray,
+                       config: SurveyConfig, dt_s: float, n_fft: int, amp_residual: np.ndarray) -> dict:
+    """Response, filter and attributes of one station kind."""
+    est = config.estimate
+    count = sf.pair_counts(pairs.pairs, pairs.count, n)
+    identity = sf.identity_mask(count, min_pairs=est.min_pairs) | phase.isolated
+    response = sf.station_response(amp_term, phase.z)
+    response[identity] = 1.0
+    weight = np.ones(len(freqs))
+    out = {
+        "response": response.astype(np.complex64),
+        "static_ms": np.where(identity, 0.0, sf.static_from_phase(response, freqs_hz=freqs, weight=weight) * 1e3),
+        "amplitude_db": np.where(identity, 0.0, sf.amplitude_db(amp_term, weight=weight)),
+        "scattering_fraction": np.where(identity, 0.0,
+                                        sf.scattering_fraction(response, freqs_hz=freqs, weight=weight)),
+        "coherence": sf.station_coherence(pairs.pairs, pairs.coherence(), n),
+        "pairs": count,
+        "residual": phase.station_residual.mean(axis=1) if phase.station_residual.size else np.zeros(n),
+        "component": phase.component,
+        "identity": identity,
+        "filter": sf.time_filters(response, freqs_hz=freqs, n_fft=n_fft, dt_s=dt_s,
+                                  max_length_s=est.filter_length_s, lead_s=est.filter_lead_s).astype(np.float32),
+    }
+    return {f"{kind}_{k}": v for k, v in out.items()}
+
+
+def solve_stations(store: SurveyStore, config: SurveyConfig, freqs: np.ndarray, n_fft: int, *, client=None):
+    """The global solve: arrays of a solution and a summary dict."""
+    totals = load_totals(store)
+    n_src = len(read_stations(store, "sources")["key"])
+    n_rcv = len(read_stations(store, "receivers")["key"])
+    lp = totals.log_power
+    terms = ("source", "receiver", "offset") + (("cmp",) if config.estimate.cmp_bin_m > 0 else ())
+    amp = amplitude_solve(lp, terms=terms)
+    src_amp = np.zeros((n_src, len(freqs)))
+    rcv_amp = np.zeros((n_rcv, len(freqs)))
+    src_amp[: len(amp.source)] = amp.source
+    rcv_amp[: len(amp.receiver)] = amp.receiver
+    method = config.estimate.phase_method
+    rph = _phases(client, totals.receiver_pairs, n_rcv, method)
+    sph = _phases(client, totals.source_pairs, n_src, method)
+    dt = store.sample_interval_s
+    arrays = {"freq_hz": freqs, "amplitude_residual_rms": amp.residual_rms,
+              "receiver_phase_residual": rph.residual, "source_phase_residual": sph.residual}
+    arrays |= station_attributes("source", src_amp, sph, totals.source_pairs, n_src, freqs, config, dt, n_fft,
+                                 amp.residual_rms)
+    arrays |= station_attributes("receiver", rcv_amp, rph, totals.receiver_pairs, n_rcv, freqs, config, dt, n_fft,
+                                 amp.residual_rms)
+    summary = {
+        "statistics": totals.keys,
+        "receiver_components": int(rph.n_components), "source_components": int(sph.n_components),
+        "receiver_identity": int(arrays["receiver_identity"].sum()),
+        "source_identity": int(arrays["source_identity"].sum()),
+        "amplitude_residual_rms": float(np.mean(amp.residual_rms)),
+        "receiver_phase_residual": float(np.mean(rph.residual)),
+        "source_phase_residual": float(np.mean(sph.residual)),
+    }
+    return arrays, summary
+
+
+def estimate_survey(store_path, config: SurveyConfig, *, client, progress=None) -> dict:
+    """Statistics (resumable), the global solve, and a new current solution."""
+    import time
+
+    from descatter.flows.estimate import run_statistics, spectra_params
+    from descatter.storage.atomic import sweep_partials
+    from descatter.storage.estimation import write_solution
+    from descatter.storage.lock import StoreLock
+    from descatter.storage.runlog import RunLog
+
+    t0 = time.perf_counter()
+    with StoreLock(store_path, command="estimate"):
+        store = SurveyStore.open(store_path, writable=True)
+        if not store.swath_names():
+            from descatter.tasks.errors import InputNotFoundError
+
+            raise InputNotFoundError(f"{store.path}: no committed swath to estimate from (run 'descatter ingest')")
+        sweep_partials(store.path)
+        runlog = RunLog(store.path)
+        runlog.write("estimate", "start", swaths=store.swath_names())
+        stats = run_statistics(store, config, client=client, runlog=runlog, progress=progress)
+        n_fft = spectra_params(config, dt_s=store.sample_interval_s)["n_fft"]
+        if progress:
+            progress("solve", 0, 1)
+        arrays, summary = solve_stations(store, config, stats.freqs_hz, n_fft, client=client)
+        if progress:
+            progress("solve", 1, 1)
+        warnings = []
+        for kind in ("source", "receiver"):
+            n_id = summary[f"{kind}_identity"]
+            if n_id:
+                warnings.append(f"{n_id} {kind} station(s) have fewer than {config.estimate.min_pairs} pairs "
+                                "and get the identity filter")
+            if summary[f"{kind}_components"] > 1:
+                warnings.append(f"the {kind} graph falls into {summary[f'{kind}_components']} components, "
+                                "each with its own gauge: statics may be offset between them")
+        for b in stats.bridges:
+            warnings.append(f"bridged {b['kind']} components {b.get('component_a')} and {b.get('component_b')} "
+                            f"across {b.get('distance_m', 0):.1f} m")
+        for w in warnings:
+            log.warning(w)
+            runlog.write("estimate", "warning", message=w)
+        attrs = {
+            "config": config.model_dump(mode="json"),
+            "code_version": code_version(),
+            "summary": summary,
+            "components": stats.components,
+            "bridges": [{k: (v.item() if hasattr(v, "item") else v) for k, v in b.items()} for b in stats.bridges],
+            "warnings": warnings,
+            "n_fft": n_fft,
+            "dt_s": store.sample_interval_s,
+        }
+        sid = write_solution(store, arrays, attrs)
+        seconds = time.perf_counter() - t0
+        runlog.write("estimate", "end", solution=sid, seconds=round(seconds, 3), **summary)
+        return {"solution": sid, "summary": summary, "warnings": warnings, "seconds": seconds,
+                "spectra_resumed": stats.spectra_resumed, "stats_skipped": stats.stats_skipped}
+
+
+def code_version() -> str:
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        return version("descatter")
+    except PackageNotFoundError:
+        return "unknown"

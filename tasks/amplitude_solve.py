@@ -1,0 +1,440 @@
+"""Surface-consistent log-spectral decomposition (Taner & Koehler 1981; Cary & Lorentz 1993).
+
+Per frequency, the log power of the trace from source ``i`` to receiver
+``j`` is modelled as::
+
+    L_ij(f) = s_i(f) + r_j(f) + o_h(ij)(f) [+ c_m(ij)(f)]
+
+with ``o`` an offset-bin term and ``c`` an optional CMP-bin term, solved in
+least squares from :class:`~descatter.tasks.statistics.LogPowerSums` alone:
+the normal matrix ``N = A^T A`` of the 0/1 design matrix ``A`` has the trace
+counts of every term on its diagonal and the cross-count tables off it; the
+right-hand sides ``A^T L`` are the per-term sums. ``N`` is the same at every
+frequency, so all frequencies are the columns of one sparse system with one
+factorisation (or one block of conjugate-gradient iterations).
+
+**Gauge.** ``N`` is singular: a constant can move between the kinds. With
+*station components* the connected components of the graph of sources and
+receivers linked by a shared trace, and *term components* those of the graph
+of every solved term linked by a shared trace, the returned solution has,
+per frequency:
+
+- mean source term zero over the sources of each station component;
+- mean receiver term zero over the receivers of each term component, when
+  the offset term is solved (it then takes the common level);
+- mean CMP term zero over the CMP bins of each term component, when solved
+  (the offset term, or without one the receiver term, takes its level).
+
+When every station component has offset bins of its own (the usual case,
+and every connected survey) the station and term components coincide and
+this is: mean source and mean receiver term zero per component, the common
+level in the offset term. Station components that share offset bins keep
+their relative level, which the shared bins do determine.
+
+Terms with no trace are left out of the system and returned as 0 (flagged
+in ``empty``), never NaN. Modes outside the gauge (on regular grids the
+CMP term trades linear trends with the stations, Cary & Lorentz 1993) need
+``damping > 0``; the direct solver refuses a singular system with a message
+that says so.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.sparse as sp
+import scipy.sparse.linalg as sla
+from .errors import ConfigError, GeometryError
+from .phase_sync import component_labels
+from .statistics import LogPowerSums
+
+KINDS = ("source", "receiver", "offset", "cmp")
+METHODS = ("direct", "cg")
+
+# SuperLU options for a symmetric positive definite matrix: a symmetric
+# fill-reducing order and diagonal pivots (Cholesky-like fill, no pivoting).
+SPD_LU_OPTIONS = dict(permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0, options=dict(SymmetricMode=True))
+
+
+@dataclass
+class AmplitudeSolution:
+    """Log-power terms of every station and bin, gauge applied (module notes).
+
+    source, receiver: float64 [n_sources, n_freq], [n_receivers, n_freq]
+    offset, cmp:      float64 [n_offset_bins, n_freq] / [n_cmp_bins, n_freq], or None if not solved
+    residual_rms:     float64 [n_freq], sqrt(sum (L - model)^2 / n_traces)
+    component:        {kind: int64 [n_kind]} term-component label, -1 for a term with no trace
+    station_component: {"source", "receiver": int64 [n]} station-component label, -1 if no trace
+    n_components, n_station_components: int
+    empty:            {kind: bool [n_kind]} terms with no trace (their values are 0)
+    terms:            solved kinds, in the order of the unknown vector
+    method:           "direct" or "cg"; iterations: CG iterations (0 for direct)
+    converged:        bool [n_freq] (CG: relative residual below tol; direct: True)
+    """
+
+    source: np.ndarray
+    receiver: np.ndarray
+    offset: np.ndarray | None
+    cmp: np.ndarray | None
+    residual_rms: np.ndarray
+    component: dict[str, np.ndarray]
+    station_component: dict[str, np.ndarray]
+    n_components: int
+    n_station_components: int
+    empty: dict[str, np.ndarray]
+    terms: tuple[str, ...]
+    method: str
+    iterations: int
+    converged: np.ndarray
+
+    def term(self, kind: str) -> np.ndarray | None:
+        """The [n_kind, n_freq] term of ``kind`` (None if not solved)."""
+        if kind not in KINDS:
+            raise ConfigError(f"kind = {kind!r}: expected one of {', '.join(KINDS)}")
+        return getattr(self, kind)
+
+    @property
+    def n_freq(self) -> int:
+        return self.residual_rms.shape[0]
+
+
+# --------------------------------------------------------------------------- normal equations
+
+
+def _cross_table(sums: LogPowerSums, a: str, b: str) -> np.ndarray:
+    """Rows (index in a, index in b, count) int64 [k, 3], whichever way the key is written."""
+    if f"{a}|{b}" in sums.cross:
+        return np.asarray(sums.cross[f"{a}|{b}"], dtype=np.int64).reshape(-1, 3)
+    if f"{b}|{a}" in sums.cross:
+        rows = np.asarray(sums.cross[f"{b}|{a}"], dtype=np.int64).reshape(-1, 3)
+        return rows[:, [1, 0, 2]]
+    raise GeometryError(f"log-power sums have no cross-count table for {a!r} and {b!r} "
+                        f"(keys: {sorted(sums.cross)}); expected '{a}|{b}' to solve both terms")
+
+
+@dataclass
+class _System:
+    terms: tuple[str, ...]
+    sizes: dict[str, int]
+    offsets: dict[str, int]   # first unknown of each kind
+    normal: sp.csr_matrix     # [n_unknown, n_unknown], every term (empty ones have a zero row)
+    rhs: np.ndarray           # [n_unknown, n_freq]
+    active: np.ndarray        # bool [n_unknown], terms with at least one trace
+    tables: dict[tuple[str, str], np.ndarray]
+
+
+def _check_terms(terms) -> tuple[str, ...]:
+    terms = tuple(terms)
+    bad = [t for t in terms if t not in KINDS]
+    if bad or len(set(terms)) != len(terms):
+        raise ConfigError(f"terms = {terms}: expected distinct kinds from {', '.join(KINDS)}")
+    if "source" not in terms or "receiver" not in terms:
+        raise ConfigError(f"terms = {terms}: the decomposition needs 'source' and 'receiver'")
+    return terms
+
+
+def _normal_equations(sums: LogPowerSums, terms: tuple[str, ...]) -> _System:
+    n_freq = np.asarray(sums.sum_sq).shape[0]
+    sizes, offsets, start = {}, {}, 0
+    for kind in terms:
+        if kind not in sums.sums or kind not in sums.counts:
+            raise GeometryError(f"log-power sums have no {kind!r} term (kinds: {sorted(sums.sums)}); "
+                                f"drop it from terms or accumulate it")
+        s = np.asarray(sums.sums[kind])
+        if s.ndim != 2 or s.shape[1] != n_freq or len(sums.counts[kind]) != len(s):
+            raise GeometryError(f"{kind!r} sums have shape {s.shape} and {len(sums.counts[kind])} counts; "
+                                f"expected [n_{kind}, {n_freq}] and one count per term")
+        sizes[kind], offsets[kind] = len(s), start
+        start += len(s)
+    n = start
+    rows, cols, vals, tables = [], [], [], {}
+    for kind in terms:
+        idx = offsets[kind] + np.arange(sizes[kind])
+        rows.append(idx)
+        cols.append(idx)
+        vals.append(np.asarray(sums.counts[kind], dtype=np.float64))
+    for i, a in enumerate(terms):
+        for b in terms[i + 1:]:
+            t = _cross_table(sums, a, b)
+            if len(t) and (t[:, 0].min() < 0 or t[:, 0].max() >= sizes[a] or t[:, 1].min() < 0 or t[:, 1].max() >= sizes[b]):
+                raise GeometryError(f"cross-count table {a}|{b} indexes beyond {sizes[a]} {a} and {sizes[b]} {b} terms")
+            for kind, col, size in ((a, 0, sizes[a]), (b, 1, sizes[b])):
+                got = np.bincount(t[:, col], weights=t[:, 2], minlength=size)
+                if not np.array_equal(got, np.asarray(sums.counts[kind], dtype=np.float64)):
+                    raise GeometryError(f"cross-count table {a}|{b} holds {int(got.sum())} traces per {kind} term "
+                                        f"where the {kind} counts hold {int(np.sum(sums.counts[kind]))}; "
+                                        f"the tables must come from the same traces")
+            tables[(a, b)] = t
+            ra, rb, c = offsets[a] + t[:, 0], offsets[b] + t[:, 1], t[:, 2].astype(np.float64)
+            rows += [ra, rb]
+            cols += [rb, ra]
+            vals += [c, c]
+    normal = sp.csr_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))), shape=(n, n))
+    rhs = np.concatenate([np.asarray(sums.sums[k], dtype=np.float64) for k in terms], axis=0)
+    active = np.concatenate([np.asarray(sums.counts[k]) > 0 for k in terms])
+    return _System(terms, sizes, offsets, normal, rhs, active, tables)
+
+
+# --------------------------------------------------------------------------- components and gauge
+
+
+@dataclass
+class _Gauge:
+    station: dict[str, np.ndarray]   # station-component labels of sources, receivers
+    n_station: int
+    term: np.ndarray                 # term-component label per unknown (-1 inactive)
+    n_term: int
+    level: str | None                # kind that takes the CMP level
+
+
+def _gauge_structure(system: _System) -> _Gauge:
+    o, n = system.offsets, len(system.active)
+    ns, nr = system.sizes["source"], system.sizes["receiver"]
+    sr = system.tables[("source", "receiver")]
+    sr = sr[sr[:, 2] > 0]
+    act_sr = np.concatenate([system.active[o["source"]: o["source"] + ns], system.active[o["receiver"]: o["receiver"] + nr]])
+    st, n_st = component_labels(ns + nr, sr[:, 0], ns + sr[:, 1], act_sr)
+    a = np.concatenate([o[p] + t[t[:, 2] > 0, 0] for (p, q), t in system.tables.items()])
+    b = np.concatenate([o[q] + t[t[:, 2] > 0, 1] for (p, q), t in system.tables.items()])
+    term, n_term = component_labels(n, a, b, system.active)
+    level = None if "cmp" not in system.terms else ("offset" if "offset" in system.terms else "receiver")
+    return _Gauge({"source": st[:ns], "receiver": st[ns:]}, n_st, term, n_term, level)
+
+
+def _group_mean(x: np.ndarray, labels: np.ndarray, n_groups: int) -> np.ndarray:
+    """Mean of the rows of x [n, n_freq] per label (-1 left out): float64 [n_groups, n_freq]."""
+    keep = labels >= 0
+    m = sp.csr_matrix((np.ones(keep.sum()), (labels[keep], np.flatnonzero(keep))), shape=(n_groups, len(labels)))
+    count = np.maximum(np.asarray(m.sum(axis=1)).ravel(), 1.0)
+    return (m @ x) / count[:, None]
+
+
+def _apply_gauge(x: np.ndarray, system: _System, gauge: _Gauge) -> np.ndarray:
+    """Add null vectors of the design matrix so the gauge constraints hold (closed form:
+    the three steps touch the constraints in a triangular order)."""
+    x = x.copy()
+    o, size = system.offsets, system.sizes
+    part = {k: slice(o[k], o[k] + size[k]) for k in system.terms}
+    term_of = {k: gauge.term[part[k]] for k in system.terms}
+    # 1. per station component: sources - m, receivers + m
+    st_s, st_r = gauge.station["source"], gauge.station["receiver"]
+    m = _group_mean(x[part["source"]], st_s, gauge.n_station)
+    x[part["source"]] -= np.where((st_s >= 0)[:, None], m[np.maximum(st_s, 0)], 0.0)
+    x[part["receiver"]] += np.where((st_r >= 0)[:, None], m[np.maximum(st_r, 0)], 0.0)
+    # 2. per term component: receivers - mu, offsets + mu
+    if "offset" in system.terms:
+        t_r, t_o = term_of["receiver"], term_of["offset"]
+        mu = _group_mean(x[part["receiver"]], t_r, gauge.n_term)
+        x[part["receiver"]] -= np.where((t_r >= 0)[:, None], mu[np.maximum(t_r, 0)], 0.0)
+        pass
+    # 3. per term component: cmp - nu, level kind + nu
+    if gauge.level is not None:
+        t_c, t_l = term_of["cmp"], term_of[gauge.level]
+        nu = _group_mean(x[part["cmp"]], t_c, gauge.n_term)
+        x[part["cmp"]] -= np.where((t_c >= 0)[:, None], nu[np.maximum(t_c, 0)], 0.0)
+        x[part[gauge.level]] += np.where((t_l >= 0)[:, None], nu[np.maximum(t_l, 0)], 0.0)
+    return x
+
+
+def _pins(system: _System, gauge: _Gauge) -> np.ndarray:
+    """Unknowns fixed at 0 so the pinned normal matrix is nonsingular: the first source of
+    each station component, the first receiver of each term component (with an offset
+    term) and the first CMP bin of each term component (with a CMP term). The null vectors
+    restricted to these rows form a unit triangular matrix."""
+    o = system.offsets
+
+    def first(labels: np.ndarray, start: int, n_groups: int) -> np.ndarray:
+        keep = np.flatnonzero(labels >= 0)
+        where = np.full(n_groups, len(labels), np.int64)
+        np.minimum.at(where, labels[keep], keep)
+        return start + where[where < len(labels)]
+
+    pins = [first(gauge.station["source"], o["source"], gauge.n_station)]
+    if "offset" in system.terms:
+        r = gauge.term[o["receiver"]: o["receiver"] + system.sizes["receiver"]]
+        pins.append(first(r, o["receiver"], gauge.n_term))
+    if "cmp" in system.terms:
+        c = gauge.term[o["cmp"]: o["cmp"] + system.sizes["cmp"]]
+        pins.append(first(c, o["cmp"], gauge.n_term))
+    return np.concatenate(pins)
+
+
+# --------------------------------------------------------------------------- solvers
+
+
+def _dense_unknowns(matrix: sp.csr_matrix) -> np.ndarray:
+    """Unknowns coupled to very many others (offset bins touch most stations): bool [n].
+    Eliminated last through a small dense Schur complement, they keep the sparse
+    ordering fast and the fill low."""
+    n = matrix.shape[0]
+    return np.diff(matrix.indptr) > max(100, 4 * int(np.sqrt(n)))
+
+
+def _factor(matrix: sp.csc_matrix, system: _System):
+    try:
+        lu = sla.splu(matrix, **SPD_LU_OPTIONS)
+    except RuntimeError as exc:  # SuperLU: "Factor is exactly singular"
+        raise _singular_error(system) from exc
+    pivots = np.abs(lu.U.diagonal())
+    if not np.all(np.isfinite(pivots)) or pivots.min() <= 1e-10 * pivots.max():
+        raise _singular_error(system)
+    return lu
+
+
+def _direct(system: _System, gauge: _Gauge, damping: float) -> np.ndarray:
+    """Sparse LU (SPD options) of the pinned (or damped) normal matrix, all columns at once.
+
+    With ``N_RR = [[A, B], [B^T, C]]``, ``C`` the few dense unknowns: ``A`` is factored
+    sparse, then ``S = C - B^T A^-1 B`` (small, dense) gives
+    ``x_C = S^-1 (b_C - B^T A^-1 b_A)`` and ``x_A = A^-1 (b_A - B x_C)``."""
+    n = len(system.active)
+    solve_for = system.active.copy()
+    matrix = system.normal
+    if damping > 0:
+        matrix = matrix + sp.diags(damping * _mean_count(system) * system.active.astype(np.float64))
+    else:
+        solve_for[_pins(system, gauge)] = False
+    idx = np.flatnonzero(solve_for)
+    x = np.zeros((n, system.rhs.shape[1]))
+    if len(idx) == 0:
+        return x
+    reduced = matrix[idx][:, idx].tocsr()
+    rhs = system.rhs[idx]
+    dense = _dense_unknowns(reduced)
+    if not dense.any() or dense.all():
+        x[idx] = _factor(reduced.tocsc(), system).solve(np.ascontiguousarray(rhs))
+        return x
+    sparse_part, dense_part = np.flatnonzero(~dense), np.flatnonzero(dense)
+    a = reduced[sparse_part][:, sparse_part].tocsc()
+    b = reduced[sparse_part][:, dense_part].toarray()
+    c = reduced[dense_part][:, dense_part].toarray()
+    lu = _factor(a, system)
+    y = lu.solve(np.ascontiguousarray(b))
+    schur = c - b.T @ y
+    d = np.diag(schur)
+    if not np.all(d > 0) or np.linalg.cond(schur) > 1e12:
+        raise _singular_error(system)
+    u = lu.solve(np.ascontiguousarray(rhs[sparse_part]))
+    x_dense = np.linalg.solve(schur, rhs[dense_part] - b.T @ u)
+    out = np.empty_like(rhs)
+    out[dense_part] = x_dense
+    out[sparse_part] = u - y @ x_dense
+    x[idx] = out
+    return x
+
+
+def _singular_error(system: _System) -> GeometryError:
+    extra = " (with a CMP term, linear trends trade between the CMP and station terms on regular grids)" \
+        if "cmp" in system.terms else ""
+    return GeometryError(f"the normal equations of terms {system.terms} are singular beyond the gauge{extra}; "
+                         f"pass damping > 0 (for example 1e-3) or drop a term")
+
+
+def _mean_count(system: _System) -> float:
+    d = system.normal.diagonal()[system.active]
+    return float(d.mean()) if len(d) else 1.0
+
+
+def _cg(system: _System, damping: float, x0: np.ndarray | None, tol: float, maxiter: int):
+    """Jacobi-preconditioned conjugate gradients, one independent CG per column, vectorised.
+
+    Without damping the normal matrix is singular but the right-hand sides lie in its
+    range, so CG converges; the null-space part of ``x0`` stays put and the gauge
+    removes it afterwards."""
+    idx = np.flatnonzero(system.active)
+    a = system.normal[idx][:, idx].tocsr()
+    if damping > 0:
+        a = a + sp.identity(len(idx)) * (damping * _mean_count(system))
+    b = system.rhs[idx]
+    x = np.zeros_like(b) if x0 is None else np.array(x0[idx], dtype=np.float64)
+    inv_d = 1.0 / a.diagonal()
+    r = b - a @ x
+    z = inv_d[:, None] * r
+    p = z.copy()
+    rz = np.einsum("ij,ij->j", r, z)
+    norm_b = np.maximum(np.linalg.norm(b, axis=0), np.finfo(float).tiny)
+    done = np.linalg.norm(r, axis=0) <= tol * norm_b
+    it = 0
+    while not done.all() and it < maxiter:
+        q = a @ p
+        pq = np.einsum("ij,ij->j", p, q)
+        alpha = np.where(done | (pq <= 0), 0.0, rz / np.where(pq > 0, pq, 1.0))
+        x += alpha * p
+        r -= alpha * q
+        done = done | (np.linalg.norm(r, axis=0) <= tol * norm_b)
+        z = inv_d[:, None] * r
+        rz_new = np.einsum("ij,ij->j", r, z)
+        beta = np.where(done, 0.0, rz_new / np.where(rz > 0, rz, 1.0))
+        p = z + beta * p
+        rz = rz_new
+        it += 1
+    out = np.zeros_like(system.rhs)
+    out[idx] = x
+    return out, it, done
+
+
+def amplitude_solve(
+    sums: LogPowerSums,
+    *,
+    terms: tuple[str, ...] = ("source", "receiver", "offset"),
+    damping: float = 0.0,
+    warm_start: AmplitudeSolution | None = None,
+    method: str = "direct",
+    tol: float = 1e-10,
+    maxiter: int = 5000,
+) -> AmplitudeSolution:
+    """Least-squares surface-consistent decomposition of the log power, every frequency.
+
+    Solves ``min_x ||A x - L||^2 + damping * mean_count * ||x||^2`` per frequency column
+    through the normal equations ``(N + damping * mean_count * I) x = A^T L`` assembled
+    from ``sums`` (``N`` = counts on the diagonal, cross counts off it; ``mean_count`` the
+    mean trace count of a term, so ``damping`` is scale-free), then applies the gauge of
+    the module notes. ``method="direct"``: one sparse LU of the pinned normal matrix
+    (one term per null vector fixed at 0) for all columns; ``"cg"``: Jacobi-preconditioned
+    CG on every column to relative residual ``tol`` (``warm_start`` as the first guess).
+
+    sums: LogPowerSums with ``sums[kind]`` float64 [n_kind, n_freq], ``counts[kind]`` int64
+    [n_kind] and the cross-count tables of every pair of ``terms``. Returns an
+    :class:`AmplitudeSolution` (terms float64 [n_kind, n_freq]).
+    """
+    terms = _check_terms(terms)
+    if method not in METHODS:
+        raise ConfigError(f"method = {method!r}: expected one of {', '.join(METHODS)}")
+    if not (np.isfinite(damping) and damping >= 0):
+        raise ConfigError(f"damping = {damping}: expected a number >= 0")
+    system = _normal_equations(sums, terms)
+    gauge = _gauge_structure(system)
+    n_freq = system.rhs.shape[1]
+    if method == "direct":
+        x = _direct(system, gauge, damping)
+        iterations, converged = 0, np.ones(n_freq, bool)
+    else:
+        x0 = None
+        if warm_start is not None:
+            parts = [warm_start.term(k) for k in terms]
+            if any(p is None for p in parts) or sum(len(p) for p in parts) != len(system.active) \
+                    or parts[0].shape[1] != n_freq:
+                raise ConfigError("warm_start does not match these sums: expected a solution of the same terms, "
+                                  "term counts and frequencies")
+            x0 = np.concatenate(parts, axis=0)
+        x, iterations, converged = _cg(system, damping, x0, tol, maxiter)
+    x = _apply_gauge(x, system, gauge)
+    nx = system.normal @ x
+    rss = np.asarray(sums.sum_sq, dtype=np.float64) - 2 * np.einsum("ij,ij->j", x, system.rhs) + np.einsum("ij,ij->j", x, nx)
+    residual = np.sqrt(np.maximum(rss, 0.0) / max(int(sums.n_traces), 1))
+
+    def block(kind: str) -> np.ndarray | None:
+        if kind not in terms:
+            return None
+        o = system.offsets[kind]
+        return x[o: o + system.sizes[kind]]
+
+    component = {k: gauge.term[system.offsets[k]: system.offsets[k] + system.sizes[k]] for k in terms}
+    empty = {k: ~system.active[system.offsets[k]: system.offsets[k] + system.sizes[k]] for k in terms}
+    return AmplitudeSolution(
+        source=block("source"), receiver=block("receiver"), offset=block("offset"), cmp=block("cmp"),
+        residual_rms=residual, component=component, station_component=gauge.station,
+        n_components=gauge.n_term, n_station_components=gauge.n_station, empty=empty, terms=terms,
+        method=method, iterations=int(iterations), converged=np.asarray(converged, bool),
+    )
