@@ -181,6 +181,39 @@ def estimate(
 
 
 @app.command()
+def apply(
+    store: Path = typer.Argument(..., help="survey store"),
+    mode: Optional[str] = typer.Option(None, "--mode", help="full (amplitude and phase, default) or phase"),
+    solution: Optional[str] = typer.Option(None, "--solution", help="solution id (default: the current one)"),
+    config: Optional[Path] = typer.Option(None, "--config", help="survey config (default: the one kept at ingest)"),
+    prewhitening: Optional[float] = typer.Option(None, "--prewhitening", help="fraction of mean in-band power"),
+    workers: Optional[int] = typer.Option(None, "--workers", help="local worker processes (default: one per core)"),
+    cluster: str = typer.Option("local", "--cluster", help="local, threads, or tcp://HOST:PORT"),
+    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB"),
+) -> None:
+    """Apply a solution's correction filters to every trace (into each swath's 'corrected')."""
+    from descatter.flows.apply import apply_solution
+    from descatter.flows.cluster import dask_client
+    from descatter.storage.config_file import config_for_store
+
+    cfg = config_for_store(store, config)
+    try:
+        if mode is not None:
+            cfg.correction.mode = mode
+        if prewhitening is not None:
+            cfg.correction.prewhitening = prewhitening
+    except ValueError as exc:
+        raise DescatterError(f"bad option: {exc}") from None
+    with _progress("apply") as bar, dask_client(cluster, workers=workers, memory_limit=memory_limit) as client:
+        task = bar.add_task("apply", total=None)
+        result = apply_solution(store, cfg, client=client, solution=solution,
+                                progress=lambda stage, done, total: bar.update(task, completed=done, total=total))
+    console.print(f"corrected {result['traces']} traces with solution {result['solution']} "
+                  f"({result['settings']['mode']}, prewhitening {result['settings']['prewhitening']:g}) "
+                  f"in {result['seconds']:.1f} s; {result['passed_through']} passed through unchanged")
+
+
+@app.command()
 def solutions(store: Path = typer.Argument(..., help="survey store")) -> None:
     """List the store's solutions (the current one marked)."""
     from descatter.storage.estimation import list_solutions, solution_attrs

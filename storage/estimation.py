@@ -69,6 +69,33 @@ def read_spectra(store_path: str | Path, swath: str, rows: np.ndarray | slice) -
     return arr[lo:hi][rows - lo]
 
 
+# -- corrected traces ------------------------------------------------------
+
+def create_corrected(store: SurveyStore, swath: str, *, settings: dict[str, Any]) -> None:
+    """(Re)create a swath's corrected array like its traces, with the
+    effective correction settings in its attributes (written once, here)."""
+    traces = store.array(swath, "traces")
+    group = zarr.open_group(str(store.path), mode="r+")[f"{SWATHS}/{swath}"]
+    arr = group.create_array("corrected", shape=traces.shape, chunks=traces.chunks, dtype="float32",
+                             compressors=traces.compressors, fill_value=0.0, overwrite=True,
+                             dimension_names=["trace", "sample"])
+    arr.attrs.update(settings)
+
+
+def corrected_settings(store: SurveyStore, swath: str) -> dict[str, Any] | None:
+    if not (store.path / SWATHS / swath / "corrected" / "zarr.json").is_file():
+        return None
+    return dict(store.array(swath, "corrected").attrs)
+
+
+def write_corrected_chunk(store_path: str | Path, swath: str, start: int, samples: np.ndarray) -> None:
+    arr = zarr.open_array(str(store_path), path=f"{SWATHS}/{swath}/corrected", mode="r+")
+    stop = start + samples.shape[0]
+    if start % arr.chunks[0] or (stop != arr.shape[0] and stop - start != arr.chunks[0]):
+        raise ValueError(f"corrected block [{start}, {stop}) of {swath!r} is not one chunk of {arr.chunks[0]}")
+    arr[start:stop] = samples
+
+
 # -- statistics ----------------------------------------------------------
 
 def write_stats(store_path: str | Path, key: str, group: str, arrays: dict[str, np.ndarray]) -> None:

@@ -173,6 +173,23 @@ class EstimateConfig(_Section):
         4000, ge=100, description="traces per statistics task (whole shots or receivers)", json_schema_extra=_unit("traces"))
 
 
+class CorrectionConfig(_Section):
+    """How station filters become corrections applied to every trace."""
+
+    mode: Literal["full", "phase"] = Field(
+        "full", description="full (amplitude and phase) or phase (phase only)", json_schema_extra=_unit("choice"))
+    prewhitening: float = Field(
+        0.1, ge=0.0,
+        description="eps of conj(H) / (|H|^2 + eps) as a fraction of the trace's mean in-band |H|^2; about the "
+                    "noise-to-signal power ratio (measured best on the synthetic survey)",
+        json_schema_extra=_unit("fraction"),
+    )
+    band_taper_hz: float = Field(
+        5.0, ge=0.0, description="transition from the correction in the band to identity outside it",
+        json_schema_extra=_unit("Hz"),
+    )
+
+
 class SurveyConfig(_Section):
     """Everything a survey run can be told. Sections mirror the stages."""
 
@@ -181,4 +198,5 @@ class SurveyConfig(_Section):
     qc: QcConfig = Field(default_factory=QcConfig, description="trace QC policies and exclusions")
     analysis: AnalysisConfig = Field(default_factory=AnalysisConfig, description="analysis window and band")
     estimate: EstimateConfig = Field(default_factory=EstimateConfig, description="station pairs, solves and filters")
+    correction: CorrectionConfig = Field(default_factory=CorrectionConfig, description="correction filters")
 

@@ -430,3 +430,20 @@ def truncated_inverse_filters(
     if dead.any():
         a[dead] = _spike_row(n_taps, lag)
     return a
+
+
+def filter_spectra(filters: np.ndarray, *, lead_s: float, dt_s: float, n_fft: int) -> np.ndarray:
+    """Spectra of time-domain station filters on another FFT grid.
+
+    filters: float [n, n_taps], tap ``q`` at time ``-lead + q dt`` (the layout
+    of ``station_filters.time_filters``). Returns complex128 [n, n_fft // 2 + 1]:
+    ``H(f_k) = sum_q h_q exp(-2 pi i f_k (q dt - lead))`` with
+    ``f_k = k / (n_fft dt)``, i.e. ``rfft(h, n_fft) * exp(+2 pi i f_k lead)``
+    (numpy.fft.rfft convention). ``n_fft`` must hold the filter.
+    """
+    h = np.asarray(filters, dtype=np.float64)
+    if h.ndim != 2 or h.shape[1] > n_fft:
+        raise ConfigError(f"filters: got shape {h.shape}; expected [n, n_taps] with n_taps <= n_fft = {n_fft}")
+    f = sfft.rfftfreq(n_fft, dt_s)
+    lead = round(lead_s / dt_s) * dt_s
+    return sfft.rfft(h, n_fft, axis=-1) * np.exp(2j * np.pi * f * lead)

@@ -166,3 +166,38 @@ def test_rerun_skips_finished_work_and_statistics_add_up(scatter, client, tmp_pa
     assert np.allclose(sa["receiver_static_ms"], sb["receiver_static_ms"], atol=1e-9)
     skipped = [r for r in read_runlog(one) if r["stage"] == "spectra" and r["event"] == "batch" and r["resumed"]]
     assert skipped  # earlier swaths' spectra were not recomputed
+
+
+def test_apply_corrects_passes_dead_traces_and_exports(scatter, client, tmp_path):
+    import shutil
+
+    import segyio
+
+    from descatter.flows.apply import apply_solution
+    from descatter.flows.export import export_segy
+    from descatter.storage.stations import write_qc_flags, read_qc_flags
+    from descatter.tasks.trace_qc import FLAG_BITS
+
+    survey, store_src, _ = scatter
+    store = tmp_path / "s.zarr"
+    shutil.copytree(store_src, store)
+    cfg = load_config(survey / "survey.toml")
+    s = SurveyStore.open(store, writable=True)
+    flags = read_qc_flags(s, "line01")
+    flags[7] |= FLAG_BITS["excluded"]  # an excluded trace must pass through untouched
+    write_qc_flags(s, "line01", flags)
+    result = apply_solution(store, cfg, client=client)
+    assert result["passed_through"] == 1
+    raw, cor = s.array("line01", "traces")[:], s.array("line01", "corrected")[:]
+    assert np.array_equal(cor[7], raw[7])
+    assert np.isfinite(cor).all() and not np.array_equal(cor[8], raw[8])
+    again = apply_solution(store, cfg, client=client)
+    assert again["resumed_chunks"] == sum(len(r.chunk_bounds()) for r in s.manifest())
+    # exported corrected SEG-Y read back with segyio equals the store; headers equal the input's
+    export_segy(store, tmp_path / "corrected.sgy", array="corrected")
+    with segyio.open(str(tmp_path / "corrected.sgy"), ignore_geometry=True) as f, \
+            segyio.open(str(sorted(survey.glob("line*.sgy"))[0]), ignore_geometry=True) as g:
+        f.mmap()
+        assert np.array_equal(f.trace.raw[: len(cor)], cor)
+        assert all(dict(f.header[i]) == dict(g.header[i]) for i in (0, 7, len(cor) - 1))
+    assert s.array("line01", "corrected").attrs["mode"] == "full"

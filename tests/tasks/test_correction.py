@@ -284,3 +284,17 @@ def test_band_limited_responses_restore_the_band(survey):
     start, stop = int(0.15 / spec.dt_s), int(round(0.9 / spec.dt_s))  # the window these were measured on
     after = zero_lag_correlation(bandpass(corrected, **band), bandpass(clean, **band), start=start, stop=stop)
     assert np.median(after) > 0.98
+
+
+def test_filter_spectra_matches_a_direct_dft():
+    # numpy.fft conventions: H(f) = sum_t h(t) exp(-2 pi i f t), here with t = q dt - lead
+    from descatter.tasks.correction import filter_spectra
+
+    rng = np.random.default_rng(8)
+    h = rng.standard_normal((3, 20))
+    dt, lead, n_fft = 0.004, 0.012, 64
+    got = filter_spectra(h, lead_s=lead, dt_s=dt, n_fft=n_fft)
+    f = np.fft.rfftfreq(n_fft, dt)
+    t = np.arange(20) * dt - lead
+    ref = h @ np.exp(-2j * np.pi * np.outer(t, f))
+    assert np.allclose(got, ref, atol=1e-10)
