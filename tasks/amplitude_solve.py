@@ -45,6 +45,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as sla
+
 from .errors import ConfigError, GeometryError
 from .phase_sync import component_labels
 from .statistics import LogPowerSums
@@ -227,7 +228,7 @@ def _apply_gauge(x: np.ndarray, system: _System, gauge: _Gauge) -> np.ndarray:
         t_r, t_o = term_of["receiver"], term_of["offset"]
         mu = _group_mean(x[part["receiver"]], t_r, gauge.n_term)
         x[part["receiver"]] -= np.where((t_r >= 0)[:, None], mu[np.maximum(t_r, 0)], 0.0)
-        pass
+        x[part["offset"]] += np.where((t_o >= 0)[:, None], mu[np.maximum(t_o, 0)], 0.0)
     # 3. per term component: cmp - nu, level kind + nu
     if gauge.level is not None:
         t_c, t_l = term_of["cmp"], term_of[gauge.level]
@@ -386,13 +387,21 @@ def amplitude_solve(
 ) -> AmplitudeSolution:
     """Least-squares surface-consistent decomposition of the log power, every frequency.
 
-    Solves ``min_x ||A x - L||^2 + damping * mean_count * ||x||^2`` per frequency column
-    through the normal equations ``(N + damping * mean_count * I) x = A^T L`` assembled
-    from ``sums`` (``N`` = counts on the diagonal, cross counts off it; ``mean_count`` the
-    mean trace count of a term, so ``damping`` is scale-free), then applies the gauge of
-    the module notes. ``method="direct"``: one sparse LU of the pinned normal matrix
-    (one term per null vector fixed at 0) for all columns; ``"cg"``: Jacobi-preconditioned
-    CG on every column to relative residual ``tol`` (``warm_start`` as the first guess).
+    Solves ``min_x ||A x - L||^2 + damping * mean_count * ||x||^2`` (Tikhonov damping)
+    per frequency column through the normal equations
+    ``(N + damping * mean_count * I) x = A^T L`` assembled from ``sums`` (``N`` = counts
+    on the diagonal, cross counts off it; ``mean_count`` the mean trace count of a term,
+    so ``damping`` is scale-free), then applies the gauge of the module notes.
+
+    ``method="direct"``: one sparse LU of the pinned normal matrix (one term per null
+    vector fixed at 0; the few dense offset-bin unknowns through a Schur complement)
+    for all columns; best where each station meets few others. ``"cg"``:
+    Jacobi-preconditioned CG on every column to relative residual ``tol``, with
+    ``warm_start`` (a solution of the same terms) as the first guess; best where shots
+    record thousands of channels each, which fills a factorisation but makes CG
+    converge fast. ``residual_rms`` comes from the sums
+    (``sum L^2 - 2 x.A^T L + x.N x``): misfits below about ``1e-8`` times the rms of
+    ``L`` are lost to rounding.
 
     sums: LogPowerSums with ``sums[kind]`` float64 [n_kind, n_freq], ``counts[kind]`` int64
     [n_kind] and the cross-count tables of every pair of ``terms``. Returns an

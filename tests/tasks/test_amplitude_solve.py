@@ -1,0 +1,314 @@
+"""Surface-consistent log-spectral decomposition against an explicit design matrix.
+
+References: scipy.sparse.linalg.lsqr (Paige & Saunders 1982) on the explicit
+trace-by-term 0/1 design matrix, scipy.linalg.null_space for the null space,
+and the decomposition L_ij = s_i + r_j + o_h (+ c_m) of Taner & Koehler (1981)
+and Cary & Lorentz (1993) on noise-free synthetic log amplitudes.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.sparse as sp
+from scipy.linalg import null_space
+from scipy.sparse.csgraph import connected_components
+from scipy.sparse.linalg import lsqr
+
+from descatter.tasks.amplitude_solve import _dense_unknowns, amplitude_solve
+from descatter.tasks.errors import ConfigError, GeometryError
+from descatter.tasks.statistics import LogPowerSums
+from descatter.tasks.synthetic import station_truth, stations, swath_traces, synthetic_spec
+
+
+# --------------------------------------------------------------------------- simple references
+
+
+def sums_of(index: dict, sizes: dict, values: np.ndarray) -> LogPowerSums:
+    """LogPowerSums by loops over traces (the definition, no shortcuts)."""
+    kinds = list(index)
+    n_freq = values.shape[1]
+    sums = {k: np.zeros((sizes[k], n_freq)) for k in kinds}
+    counts = {k: np.zeros(sizes[k], np.int64) for k in kinds}
+    pair_count = {(a, b): {} for i, a in enumerate(kinds) for b in kinds[i + 1:]}
+    for t in range(len(values)):
+        for k in kinds:
+            sums[k][index[k][t]] += values[t]
+            counts[k][index[k][t]] += 1
+        for (a, b), table in pair_count.items():
+            key = (int(index[a][t]), int(index[b][t]))
+            table[key] = table.get(key, 0) + 1
+    cross = {f"{a}|{b}": np.array(sorted((i, j, c) for (i, j), c in table.items()), np.int64).reshape(-1, 3)
+             for (a, b), table in pair_count.items()}
+    return LogPowerSums(sums, counts, cross, (values**2).sum(axis=0), len(values))
+
+
+def design(index: dict, sizes: dict, terms) -> np.ndarray:
+    """Dense 0/1 design matrix [n_traces, sum of term counts] (small surveys only)."""
+    n = len(next(iter(index.values())))
+    blocks = []
+    for k in terms:
+        block = np.zeros((n, sizes[k]))
+        block[np.arange(n), index[k]] = 1.0
+        blocks.append(block)
+    return np.hstack(blocks)
+
+
+def labels(n: int, a, b) -> np.ndarray:
+    g = sp.coo_matrix((np.ones(len(a)), (a, b)), shape=(n, n))
+    return connected_components(g, directed=False)[1]
+
+
+def reference_gauge(x, a_mat, index, sizes, terms):
+    """The documented gauge applied to any least-squares solution by adding null vectors
+    of the explicit design matrix (found numerically, scipy.linalg.null_space)."""
+    off = np.cumsum([0] + [sizes[k] for k in terms])
+    part = {k: slice(off[i], off[i + 1]) for i, k in enumerate(terms)}
+    used = a_mat.sum(axis=0) > 0
+    ns, nr = sizes["source"], sizes["receiver"]
+    station = labels(ns + nr, index["source"], ns + index["receiver"])
+    n = off[-1]
+    rows_a, rows_b = [], []
+    for i, p in enumerate(terms):
+        for q in terms[i + 1:]:
+            rows_a.append(off[i] + index[p]), rows_b.append(off[terms.index(q)] + index[q])
+    term = labels(n, np.concatenate(rows_a), np.concatenate(rows_b))
+    constraints = []
+
+    def mean_row(kind, members):
+        row = np.zeros(n)
+        row[np.flatnonzero(members) + off[terms.index(kind)]] = 1.0 / members.sum()
+        return row
+
+    s_lab, r_lab = station[:ns], station[ns:]
+    for c in np.unique(s_lab[used[part["source"]]]):
+        constraints.append(mean_row("source", (s_lab == c) & used[part["source"]]))
+    t = {k: term[part[k]] for k in terms}
+    comps = np.unique(term[used])
+    if "offset" in terms:
+        for c in comps:
+            constraints.append(mean_row("receiver", (t["receiver"] == c) & used[part["receiver"]]))
+    if "cmp" in terms:
+        for c in comps:
+            constraints.append(mean_row("cmp", (t["cmp"] == c) & used[part["cmp"]]))
+    c_mat = np.array(constraints)
+    z = null_space(a_mat[:, used])
+    z_full = np.zeros((n, z.shape[1]))
+    z_full[used] = z
+    assert z.shape[1] == len(constraints), "the documented gauge must fix exactly the null space"
+    x = np.where(used[:, None], x, 0.0)
+    return x - z_full @ np.linalg.solve(c_mat @ z_full, c_mat @ x)
+
+
+def lsqr_solution(a_mat, values):
+    """scipy.sparse.linalg.lsqr (Paige & Saunders 1982) on every column."""
+    a = sp.csr_matrix(a_mat)
+    return np.stack([lsqr(a, values[:, f], atol=1e-15, btol=1e-15, iter_lim=20_000)[0]
+                     for f in range(values.shape[1])], axis=1)
+
+
+def random_survey(rng, n_src, n_rcv, n_off, n_traces, n_cmp=None):
+    index = {"source": rng.integers(0, n_src, n_traces), "receiver": rng.integers(0, n_rcv, n_traces),
+             "offset": rng.integers(0, n_off, n_traces)}
+    sizes = {"source": n_src, "receiver": n_rcv, "offset": n_off}
+    if n_cmp:
+        index["cmp"], sizes["cmp"] = rng.integers(0, n_cmp, n_traces), n_cmp
+    return index, sizes
+
+
+def stacked(sol, terms):
+    return np.concatenate([sol.term(k) for k in terms], axis=0)
+
+
+# --------------------------------------------------------------------------- against lsqr
+
+
+@pytest.mark.parametrize("n_src,n_rcv,n_off,n_traces", [(12, 20, 5, 160), (110, 200, 3, 1500)])
+def test_matches_lsqr_on_the_explicit_design_matrix(n_src, n_rcv, n_off, n_traces):
+    rng = np.random.default_rng(1)
+    index, sizes = random_survey(rng, n_src, n_rcv, n_off, n_traces)
+    terms = ("source", "receiver", "offset")
+    values = rng.standard_normal((n_traces, 4))
+    sums = sums_of(index, sizes, values)
+    sol = amplitude_solve(sums)
+    a_mat = design(index, sizes, terms)
+    ref = reference_gauge(lsqr_solution(a_mat, values), a_mat, index, sizes, terms)  # scipy lsqr
+    np.testing.assert_allclose(stacked(sol, terms), ref, atol=1e-8)
+    rms = np.sqrt(((a_mat @ ref - values) ** 2).mean(axis=0))
+    np.testing.assert_allclose(sol.residual_rms, rms, rtol=1e-7)
+    assert sol.n_components == 1 and sol.method == "direct" and sol.converged.all()
+
+
+def test_large_survey_takes_the_dense_offset_path():
+    # the second case above: offset bins coupled to hundreds of stations are eliminated
+    # through the dense Schur complement
+    rng = np.random.default_rng(1)
+    index, sizes = random_survey(rng, 110, 200, 3, 1500)
+    normal = sp.csr_matrix(design(index, sizes, ("source", "receiver", "offset")))
+    assert _dense_unknowns((normal.T @ normal).tocsr()).sum() == 3
+
+
+def test_cg_matches_direct_and_warm_start_helps():
+    rng = np.random.default_rng(2)
+    index, sizes = random_survey(rng, 40, 70, 6, 900)
+    sums = sums_of(index, sizes, rng.standard_normal((900, 5)))
+    direct = amplitude_solve(sums)
+    cg = amplitude_solve(sums, method="cg", tol=1e-12)
+    terms = direct.terms
+    np.testing.assert_allclose(stacked(cg, terms), stacked(direct, terms), atol=1e-8)
+    assert cg.converged.all() and cg.iterations > 5
+    again = amplitude_solve(sums, method="cg", tol=1e-12, warm_start=cg)
+    assert again.iterations < cg.iterations // 2
+    np.testing.assert_allclose(stacked(again, terms), stacked(direct, terms), atol=1e-8)
+
+
+def test_cmp_term_on_irregular_bins_matches_lsqr():
+    rng = np.random.default_rng(3)
+    index, sizes = random_survey(rng, 15, 25, 4, 400, n_cmp=30)
+    terms = ("source", "receiver", "offset", "cmp")
+    values = rng.standard_normal((400, 3))
+    sol = amplitude_solve(sums_of(index, sizes, values), terms=terms)
+    a_mat = design(index, sizes, terms)
+    ref = reference_gauge(lsqr_solution(a_mat, values), a_mat, index, sizes, terms)
+    np.testing.assert_allclose(stacked(sol, terms), ref, atol=1e-8)
+    np.testing.assert_allclose(sol.cmp.mean(axis=0), 0.0, atol=1e-12)
+
+
+def test_cmp_term_on_a_regular_line_needs_damping():
+    # 2D line, stations every unit, CMP bins of half a unit: s_i + r_j - 2 c_m is an exact
+    # null mode for a linear trend (Cary & Lorentz 1993), outside the constant gauge
+    src, rcv = np.meshgrid(np.arange(0, 30, 3), np.arange(30), indexing="ij")
+    src, rcv = src.ravel(), rcv.ravel()
+    index = {"source": src // 3, "receiver": rcv, "offset": np.abs(src - rcv) // 4, "cmp": src + rcv}
+    sizes = {"source": 10, "receiver": 30, "offset": int(index["offset"].max()) + 1, "cmp": 59}
+    rng = np.random.default_rng(4)
+    values = rng.standard_normal((len(src), 2))
+    sums = sums_of(index, sizes, values)
+    terms = ("source", "receiver", "offset", "cmp")
+    with pytest.raises(GeometryError, match="damping"):
+        amplitude_solve(sums, terms=terms)
+    damped = amplitude_solve(sums, terms=terms, damping=1e-6)
+    undamped_fit = amplitude_solve(sums, terms=terms, method="cg", tol=1e-13).residual_rms
+    assert np.all(np.isfinite(stacked(damped, terms)))
+    np.testing.assert_allclose(damped.residual_rms, undamped_fit, rtol=1e-4)
+
+
+# --------------------------------------------------------------------------- exact recovery, synthetic survey
+
+
+def test_exact_recovery_on_noise_free_synthetic_log_amplitudes():
+    spec = synthetic_spec(size="tiny", scenario="statics", seed=7)
+    tables = stations(spec)
+    truth = station_truth(spec, tables)
+    geo = [swath_traces(spec, s, tables) for s in range(spec.n_swaths)]
+    src = np.concatenate([g.source_index for g in geo]).astype(np.int64)
+    rcv = np.concatenate([g.receiver_index for g in geo]).astype(np.int64)
+    off = np.floor(np.concatenate([g.offset for g in geo]) / 50.0).astype(np.int64)
+    freqs = np.linspace(10, 65, 6)
+    # log power terms: 2 x the true log amplitude plus a zero-mean frequency-dependent part
+    rng = np.random.default_rng(5)
+    s_true = 2 * truth.sources.log_amplitude[:, None] + 0.1 * rng.standard_normal((len(tables.sources), 6))
+    r_true = 2 * truth.receivers.log_amplitude[:, None] + 0.1 * rng.standard_normal((len(tables.receivers), 6))
+    s_true -= s_true.mean(axis=0)
+    r_true -= r_true.mean(axis=0)
+    o_true = -0.002 * (np.arange(off.max() + 1)[:, None] * 50.0) * (1 + freqs / 65)  # attenuation with offset
+    values = s_true[src] + r_true[rcv] + o_true[off]
+    index = {"source": src, "receiver": rcv, "offset": off}
+    sizes = {"source": len(tables.sources), "receiver": len(tables.receivers), "offset": int(off.max()) + 1}
+    sol = amplitude_solve(sums_of(index, sizes, values))
+    # Taner & Koehler (1981): noise-free surface-consistent log amplitudes are recovered exactly
+    np.testing.assert_allclose(sol.source, s_true, atol=1e-10)
+    np.testing.assert_allclose(sol.receiver, r_true, atol=1e-10)
+    np.testing.assert_allclose(sol.offset, o_true, atol=1e-10)
+    assert sol.residual_rms.max() < 1e-6  # sum-based residual: limited by cancellation, ~sqrt(eps)
+    assert sol.n_components == 1 and not any(e.any() for e in sol.empty.values())
+
+
+# --------------------------------------------------------------------------- components and empty terms
+
+
+def test_disconnected_surveys_are_solved_per_component():
+    rng = np.random.default_rng(6)
+    parts = [random_survey(rng, 8, 12, 3, 120), random_survey(rng, 10, 9, 4, 150)]
+    # second survey: its own stations and offset bins, after the first
+    index = {k: np.concatenate([parts[0][0][k], parts[1][0][k] + parts[0][1][k]]) for k in parts[0][0]}
+    sizes = {k: parts[0][1][k] + parts[1][1][k] for k in parts[0][1]}
+    truth = {k: rng.standard_normal((sizes[k], 3)) for k in sizes}
+    values = sum(truth[k][index[k]] for k in truth)
+    sol = amplitude_solve(sums_of(index, sizes, values))
+    assert sol.n_components == 2 and sol.n_station_components == 2
+    for kind in ("source", "receiver"):
+        comp = sol.component[kind]
+        assert set(comp[: parts[0][1][kind]]) == {0} and set(comp[parts[0][1][kind]:]) == {1}
+        for c in (0, 1):
+            np.testing.assert_allclose(sol.term(kind)[comp == c].mean(axis=0), 0.0, atol=1e-12)
+    # each part alone gives the same terms as the joint solve
+    for i, (idx, siz) in enumerate(parts):
+        alone = amplitude_solve(sums_of(idx, siz, sum(truth[k][idx[k] + (parts[0][1][k] if i else 0)] for k in truth)))
+        for kind in ("source", "receiver", "offset"):
+            start = parts[0][1][kind] if i else 0
+            np.testing.assert_allclose(sol.term(kind)[start: start + siz[kind]], alone.term(kind), atol=1e-10)
+    assert sol.residual_rms.max() < 1e-6
+
+
+def test_station_islands_sharing_offset_bins_keep_their_relative_level():
+    rng = np.random.default_rng(7)
+    a, _ = random_survey(rng, 6, 8, 3, 80)
+    b, _ = random_survey(rng, 5, 7, 3, 70)
+    index = {"source": np.concatenate([a["source"], b["source"] + 6]),
+             "receiver": np.concatenate([a["receiver"], b["receiver"] + 8]),
+             "offset": np.concatenate([a["offset"], b["offset"]])}
+    sizes = {"source": 11, "receiver": 15, "offset": 3}
+    values = rng.standard_normal((150, 2))
+    terms = ("source", "receiver", "offset")
+    sol = amplitude_solve(sums_of(index, sizes, values))
+    assert sol.n_station_components == 2 and sol.n_components == 1
+    a_mat = design(index, sizes, terms)
+    ref = reference_gauge(lsqr_solution(a_mat, values), a_mat, index, sizes, terms)
+    np.testing.assert_allclose(stacked(sol, terms), ref, atol=1e-8)
+
+
+def test_stations_without_traces_are_flagged_zero_not_nan():
+    rng = np.random.default_rng(8)
+    index, sizes = random_survey(rng, 10, 14, 3, 200)
+    index["source"] = np.where(index["source"] == 4, 5, index["source"])  # source 4 never fires
+    sizes["receiver"] = 16  # receivers 14 and 15 never record
+    terms = ("source", "receiver", "offset")
+    values = rng.standard_normal((200, 3))
+    sol = amplitude_solve(sums_of(index, sizes, values))
+    assert np.flatnonzero(sol.empty["source"]).tolist() == [4]
+    assert np.flatnonzero(sol.empty["receiver"]).tolist() == [14, 15]
+    assert np.all(sol.source[4] == 0) and np.all(sol.receiver[14:] == 0)
+    assert sol.component["source"][4] == -1 and sol.station_component["receiver"][15] == -1
+    a_mat = design(index, sizes, terms)
+    ref = reference_gauge(lsqr_solution(a_mat, values), a_mat, index, sizes, terms)
+    np.testing.assert_allclose(stacked(sol, terms), ref, atol=1e-8)
+
+
+# --------------------------------------------------------------------------- input checks
+
+
+def test_input_errors_say_what_is_wrong():
+    rng = np.random.default_rng(9)
+    index, sizes = random_survey(rng, 5, 6, 2, 40)
+    sums = sums_of(index, sizes, rng.standard_normal((40, 2)))
+    with pytest.raises(ConfigError, match="terms"):
+        amplitude_solve(sums, terms=("source", "offset"))
+    with pytest.raises(ConfigError, match="method"):
+        amplitude_solve(sums, method="qr")
+    with pytest.raises(ConfigError, match="damping"):
+        amplitude_solve(sums, damping=-1.0)
+    with pytest.raises(GeometryError, match="cmp"):
+        amplitude_solve(sums, terms=("source", "receiver", "cmp"))
+    broken = LogPowerSums(sums.sums, sums.counts, {k: v for k, v in sums.cross.items() if k != "receiver|offset"},
+                          sums.sum_sq, sums.n_traces)
+    with pytest.raises(GeometryError, match="receiver.*offset"):
+        amplitude_solve(broken)
+    counts = dict(sums.counts, source=sums.counts["source"] + 1)
+    with pytest.raises(GeometryError, match="same traces"):
+        amplitude_solve(LogPowerSums(sums.sums, counts, sums.cross, sums.sum_sq, sums.n_traces))
+    flipped = dict(sums.cross)
+    t = flipped.pop("source|receiver")
+    flipped["receiver|source"] = t[:, [1, 0, 2]]
+    same = amplitude_solve(LogPowerSums(sums.sums, sums.counts, flipped, sums.sum_sq, sums.n_traces))
+    np.testing.assert_allclose(same.source, amplitude_solve(sums).source, atol=1e-12)
