@@ -83,10 +83,13 @@ def station_attributes(kind: str, amp_term: np.ndarray, phase, pairs: PairSums, 
     response = sf.station_response(amp_term, phase.z)
     response[identity] = 1.0
     weight = np.ones(len(freqs))
+    # identity stations take no part in the gauge (zero mean per component)
+    gauge = np.where(identity, -1, phase.component)
     out = {
         "response": response.astype(np.complex64),
-        "static_ms": np.where(identity, 0.0, sf.static_from_phase(response, freqs_hz=freqs, weight=weight) * 1e3),
-        "amplitude_db": np.where(identity, 0.0, sf.amplitude_db(amp_term, weight=weight)),
+        "static_ms": np.where(identity, 0.0, sf.static_from_phase(response, freqs_hz=freqs, weight=weight,
+                                                                     component=gauge) * 1e3),
+        "amplitude_db": np.where(identity, 0.0, sf.amplitude_db(amp_term, weight=weight, component=gauge)),
         "scattering_fraction": np.where(identity, 0.0,
                                         sf.scattering_fraction(response, freqs_hz=freqs, weight=weight)),
         "coherence": sf.station_coherence(pairs.pairs, pairs.coherence(), n),
