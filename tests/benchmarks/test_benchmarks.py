@@ -13,6 +13,7 @@ import pytest
 
 sys.path.insert(0, str(Path(__file__).parent))
 import bench_ingest  # noqa: E402
+import bench_solve  # noqa: E402
 
 
 def test_ingest_benchmark_prints_ratios_at_tiny_size():
@@ -27,3 +28,15 @@ def test_ingest_benchmark_prints_ratios_at_tiny_size():
 @pytest.mark.benchmark
 def test_ingest_benchmark_full_size():
     bench_ingest.run()
+
+
+def test_solve_benchmark_prints_growth_at_tiny_size():
+    buf = io.StringIO()
+    rows = bench_solve.run(sizes=(200, 400), n_freq=4, out=buf)
+    assert "growth exponent" in buf.getvalue()
+    assert all(r["phase_err"] < 0.5 and r["amp_lu"] > 0 for r in rows.values())
+
+
+@pytest.mark.benchmark
+def test_solve_benchmark_full_size():
+    bench_solve.run()
