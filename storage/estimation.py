@@ -23,7 +23,7 @@ import zarr
 import zarr.errors
 from zarr.codecs import BloscCodec
 
-from descatter.storage.store import SWATHS, SurveyStore
+from descatter.storage.store import SWATHS, SurveyStore, write_chunk
 from descatter.tasks.errors import InputNotFoundError, StoreFormatError
 
 STATS = "stats"
@@ -48,11 +48,7 @@ def spectra_shape(store: SurveyStore, swath: str) -> tuple[int, int] | None:
 
 
 def write_spectra_chunk(store_path: str | Path, swath: str, start: int, spectra: np.ndarray) -> None:
-    arr = zarr.open_array(str(store_path), path=f"{SWATHS}/{swath}/spectra", mode="r+")
-    stop = start + spectra.shape[0]
-    if start % arr.chunks[0] or (stop != arr.shape[0] and stop - start != arr.chunks[0]):
-        raise ValueError(f"spectra block [{start}, {stop}) of {swath!r} is not one chunk of {arr.chunks[0]}")
-    arr[start:stop] = spectra
+    write_chunk(store_path, swath, "spectra", start, spectra)
 
 
 def read_spectra(store_path: str | Path, swath: str, rows: np.ndarray | slice) -> np.ndarray:
@@ -89,11 +85,7 @@ def corrected_settings(store: SurveyStore, swath: str) -> dict[str, Any] | None:
 
 
 def write_corrected_chunk(store_path: str | Path, swath: str, start: int, samples: np.ndarray) -> None:
-    arr = zarr.open_array(str(store_path), path=f"{SWATHS}/{swath}/corrected", mode="r+")
-    stop = start + samples.shape[0]
-    if start % arr.chunks[0] or (stop != arr.shape[0] and stop - start != arr.chunks[0]):
-        raise ValueError(f"corrected block [{start}, {stop}) of {swath!r} is not one chunk of {arr.chunks[0]}")
-    arr[start:stop] = samples
+    write_chunk(store_path, swath, "corrected", start, samples)
 
 
 # -- statistics ----------------------------------------------------------

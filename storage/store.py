@@ -352,17 +352,27 @@ def write_trace_chunk(
     Called on workers. ``start`` must be a chunk boundary and the block exactly
     one chunk long (or the last, short one), so no two writers share a chunk.
     """
-    stop = start + samples.shape[0]
+    write_chunk(store_path, swath, "traces", start, samples)
     base = f"{SWATHS}/{swath}"
-    traces = zarr.open_array(str(store_path), path=f"{base}/traces", mode="r+")
-    if start % traces.chunks[0] or (stop != traces.shape[0] and stop - start != traces.chunks[0]):
-        raise ValueError(
-            f"block [{start}, {stop}) of swath {swath!r} is not one chunk of {traces.chunks[0]} traces"
-        )
-    traces[start:stop] = samples
+    stop = start + samples.shape[0]
     zarr.open_array(str(store_path), path=f"{base}/trace_headers", mode="r+")[start:stop] = raw_headers
     if qc_flags is not None:
         zarr.open_array(str(store_path), path=f"{base}/qc_flags", mode="r+")[start:stop] = qc_flags
+
+
+def write_chunk(store_path: str | Path, swath: str, key: str, start: int, values: np.ndarray) -> None:
+    """Write exactly one chunk (rows ``start:start+len``) of a swath's array.
+
+    ``start`` must be a chunk boundary and the block one chunk long (or the
+    last, short one), so no two writers ever share a chunk.
+    """
+    arr = zarr.open_array(str(store_path), path=f"{SWATHS}/{swath}/{key}", mode="r+")
+    stop = start + values.shape[0]
+    if start % arr.chunks[0] or (stop != arr.shape[0] and stop - start != arr.chunks[0]):
+        raise ValueError(
+            f"block [{start}, {stop}) of {swath}/{key} is not one chunk of {arr.chunks[0]} traces"
+        )
+    arr[start:stop] = values
 
 
 def write_header_fields(store: SurveyStore, swath: str, fields: dict[str, np.ndarray]) -> None:
