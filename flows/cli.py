@@ -317,6 +317,34 @@ def export(
     console.print(f"wrote {report.traces} traces to " + ", ".join(str(f) for f in report.files))
 
 
+# -- run and status ---------------------------------------------------------
+
+@app.command()
+def run(
+    store: Path = typer.Argument(..., help="survey store (created if missing)"),
+    files: List[Path] = typer.Argument(..., help="SEG-Y files, one swath each"),
+    config: Optional[Path] = typer.Option(None, "--config", help="survey config (TOML)"),
+    cluster: str = typer.Option("local", "--cluster", help="local, threads, or tcp://HOST:PORT"),
+    workers: Optional[int] = typer.Option(None, "--workers", help="local worker processes (default: one per core)"),
+    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB"),
+) -> None:
+    """ingest -> estimate -> apply as one Prefect flow on a Dask cluster."""
+    from descatter.flows.service import run_flow
+
+    out = run_flow(str(store), [str(f) for f in files], str(config) if config else None, cluster=cluster,
+                   workers=workers, memory_limit=memory_limit)
+    console.print(f"ingest: added {out['ingest']['added']}, skipped {out['ingest']['skipped']}; "
+                  f"solution {out['estimate']['solution']}; corrected {out['apply']['traces']} traces")
+
+
+@app.command()
+def status(store: Path = typer.Argument(..., help="survey store")) -> None:
+    """Per stage: chunks done/total, throughput, ETA, last warnings and errors (from the run log)."""
+    from descatter.flows.status import status_text
+
+    console.print(status_text(store), highlight=False, soft_wrap=True)
+
+
 # -- lock -----------------------------------------------------------------
 
 @app.command()

@@ -212,6 +212,7 @@ class StatsReport:
     components: dict = field(default_factory=dict)
     freqs_hz: np.ndarray | None = None
     seconds: float = 0.0
+    fingerprints: dict = field(default_factory=dict)  # statistics key -> stage fingerprint
 
 
 def _stage_marker(store: SurveyStore, stage: str, swath: str) -> Path:
@@ -338,6 +339,7 @@ def run_statistics(store: SurveyStore, config: SurveyConfig, *, client, runlog: 
             jobs.append((rec.name, group, client.submit(write_stats_task, str(store.path), rec.name, group,
                                                         total, fp, pure=False)))
         (report.stats_computed if wanted else report.stats_skipped).append(rec.name)
+        report.fingerprints[rec.name] = fp
         # source pairs between this swath and each earlier one (owned by this one)
         for prev in records[:i]:
             gp = geoms[prev.name]
@@ -349,6 +351,7 @@ def run_statistics(store: SurveyStore, config: SurveyConfig, *, client, runlog: 
             fpx = _fingerprint({"v": STAGE_VERSION, "a": spectra_fps[prev.name], "b": spectra_fps[rec.name],
                                 "exclude": exclude_bits, "pairs": hashlib.blake2b(between.tobytes()).hexdigest(),
                                 "group": est.shot_group_traces})
+            report.fingerprints[key] = fpx
             if Checkpoints(store.path, "stats", key, fpx).is_done(1):
                 report.stats_skipped.append(key)
                 continue

@@ -143,7 +143,7 @@ def estimate_survey(store_path, config: SurveyConfig, *, client, progress=None) 
 
     from descatter.flows.estimate import run_statistics, spectra_params
     from descatter.storage.atomic import sweep_partials
-    from descatter.storage.estimation import write_solution
+    from descatter.storage.estimation import list_solutions, solution_attrs, write_solution
     from descatter.storage.lock import StoreLock
     from descatter.storage.runlog import RunLog
 
@@ -159,6 +159,15 @@ def estimate_survey(store_path, config: SurveyConfig, *, client, progress=None) 
         runlog.write("estimate", "start", swaths=store.swath_names())
         stats = run_statistics(store, config, client=client, runlog=runlog, progress=progress)
         n_fft = spectra_params(config, dt_s=store.sample_interval_s)["n_fft"]
+        inputs = _inputs_fingerprint(stats.fingerprints, config)
+        current = store.attrs.get("current_solution")
+        if current and current in list_solutions(store) and solution_attrs(store, current).get("inputs") == inputs:
+            # same statistics, same solve settings, same code: the current solution stands
+            runlog.write("estimate", "end", solution=current, unchanged=True)
+            a = solution_attrs(store, current)
+            return {"solution": current, "summary": a["summary"], "warnings": a["warnings"],
+                    "seconds": time.perf_counter() - t0, "spectra_resumed": stats.spectra_resumed,
+                    "stats_skipped": stats.stats_skipped, "unchanged": True}
         if progress:
             progress("solve", 0, 1)
         arrays, summary = solve_stations(store, config, stats.freqs_hz, n_fft, client=client)
@@ -188,12 +197,22 @@ def estimate_survey(store_path, config: SurveyConfig, *, client, progress=None) 
             "warnings": warnings,
             "n_fft": n_fft,
             "dt_s": store.sample_interval_s,
+            "inputs": inputs,
         }
         sid = write_solution(store, arrays, attrs)
         seconds = time.perf_counter() - t0
         runlog.write("estimate", "end", solution=sid, seconds=round(seconds, 3), **summary)
         return {"solution": sid, "summary": summary, "warnings": warnings, "seconds": seconds,
-                "spectra_resumed": stats.spectra_resumed, "stats_skipped": stats.stats_skipped}
+                "spectra_resumed": stats.spectra_resumed, "stats_skipped": stats.stats_skipped, "unchanged": False}
+
+
+def _inputs_fingerprint(stats_fingerprints: dict, config: SurveyConfig) -> str:
+    import hashlib
+    import json
+
+    doc = {"stats": stats_fingerprints, "estimate": config.estimate.model_dump(mode="json"),
+           "analysis": config.analysis.model_dump(mode="json"), "code": code_version()}
+    return hashlib.blake2b(json.dumps(doc, sort_keys=True).encode(), digest_size=16).hexdigest()
 
 
 def code_version() -> str:

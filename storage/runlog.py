@@ -22,8 +22,10 @@ class RunLog:
         self.run_id = run_id or time.strftime("%Y%m%dT%H%M%S") + "-" + uuid.uuid4().hex[:6]
 
     def write(self, stage: str, event: str, **fields: Any) -> dict[str, Any]:
+        now = time.time()
         record = {
-            "time": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+            "time": time.strftime("%Y-%m-%dT%H:%M:%S%z", time.localtime(now)),
+            "t": round(now, 3),
             "run": self.run_id,
             "stage": stage,
             "event": event,
