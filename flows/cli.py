@@ -214,6 +214,20 @@ def apply(
 
 
 @app.command()
+def report(
+    store: Path = typer.Argument(..., help="survey store (estimated and corrected)"),
+    out: Path = typer.Argument(..., help="folder for index.html, PNG figures and metrics.json"),
+    solution: Optional[str] = typer.Option(None, "--solution", help="solution id (default: the current one)"),
+    max_traces: int = typer.Option(200_000, "--max-traces", help="traces sampled (whole shots) for trace metrics"),
+) -> None:
+    """QC report: station maps, pair correlations, gathers, spectra, S/N before and after, spacing."""
+    from descatter.flows.report import write_report
+
+    r = write_report(store, out, solution=solution, max_traces=max_traces)
+    console.print(f"wrote {r['index']} ({len(r['figures'])} figures) and {r['metrics']}")
+
+
+@app.command()
 def solutions(store: Path = typer.Argument(..., help="survey store")) -> None:
     """List the store's solutions (the current one marked)."""
     from descatter.storage.estimation import list_solutions, solution_attrs
