@@ -1,7 +1,9 @@
 """Estimation, part 2: the global solve and the station filters.
 
-Statistics of every swath (and swath pair) are summed in manifest order;
-the amplitude solve runs once for all frequencies; the phase solves run in
+Statistics of every swath (and swath pair) are summed in manifest order
+and the pair sums smoothed over frequency (``estimate.smoothing_hz``);
+the amplitude solve runs once for all frequencies (its spectral shapes then
+refined from the pair magnitudes); the phase solves run in
 frequency blocks mapped across the workers; the station filters and their
 attributes become a solution under ``solutions/<id>``.
 """
@@ -18,8 +20,9 @@ from descatter.storage.estimation import has_stats, read_stats
 from descatter.storage.stations import read_stations
 from descatter.storage.store import SurveyStore
 from descatter.tasks import station_filters as sf
-from descatter.tasks.amplitude_solve import amplitude_solve
+from descatter.tasks.amplitude_solve import amplitude_solve, pair_amplitude_solve
 from descatter.tasks.config import SurveyConfig
+from descatter.tasks.pairs import smooth_pair_sums
 from descatter.tasks.phase_sync import concat_phase_solutions, phase_sync
 from descatter.tasks.statistics import LogPowerSums, PairSums
 
@@ -80,11 +83,13 @@ def station_attributes(kind: str, amp_term: np.ndarray, phase, pairs: PairSums, 
     est = config.estimate
     count = sf.pair_counts(pairs.pairs, pairs.count, n)
     identity = sf.identity_mask(count, min_pairs=est.min_pairs) | phase.isolated
-    response = sf.station_response(amp_term, phase.z)
-    response[identity] = 1.0
-    weight = np.ones(len(freqs))
     # identity stations take no part in the gauge (zero mean per component)
     gauge = np.where(identity, -1, phase.component)
+    # a common phase that varies smoothly with frequency, not the solve's per-bin gauge
+    # (sf.smooth_gauge notes: receiver scattering-fraction rank 0.57 -> 0.73 on the demo survey)
+    response = sf.smooth_gauge(sf.station_response(amp_term, phase.z), freqs_hz=freqs, component=gauge)
+    response[identity] = 1.0
+    weight = np.ones(len(freqs))
     out = {
         "response": response.astype(np.complex64),
         "static_ms": np.where(identity, 0.0, sf.static_from_phase(response, freqs_hz=freqs, weight=weight,
@@ -106,6 +111,15 @@ def station_attributes(kind: str, amp_term: np.ndarray, phase, pairs: PairSums, 
 def solve_stations(store: SurveyStore, config: SurveyConfig, freqs: np.ndarray, n_fft: int, *, client=None):
     """The global solve: arrays of a solution and a summary dict."""
     totals = load_totals(store)
+    smoothing = config.estimate.smoothing_hz
+    if smoothing > 0 and len(freqs) > 1:
+        # Windows longer than the station filters give finer spectra than the filters need, and
+        # each bin of a pair sum brings its own noise: smooth the sums over frequency (a lag window,
+        # tasks.pairs.smooth_over_frequency). Measured with 2 Hz, median correlation of the
+        # relative receiver filters with the truth: tiny 0.77 -> 0.84, demo 0.83 -> 0.89.
+        df = float(freqs[1] - freqs[0])
+        totals.receiver_pairs = smooth_pair_sums(totals.receiver_pairs, bin_hz=df, half_width_hz=smoothing)
+        totals.source_pairs = smooth_pair_sums(totals.source_pairs, bin_hz=df, half_width_hz=smoothing)
     n_src = len(read_stations(store, "sources")["key"])
     n_rcv = len(read_stations(store, "receivers")["key"])
     lp = totals.log_power
@@ -115,6 +129,11 @@ def solve_stations(store: SurveyStore, config: SurveyConfig, freqs: np.ndarray, 
     rcv_amp = np.zeros((n_rcv, len(freqs)))
     src_amp[: len(amp.source)] = amp.source
     rcv_amp[: len(amp.receiver)] = amp.receiver
+    # The spectral shapes from the pair magnitudes, which noise does not bias the way it biases
+    # log |D|^2; the log-power terms hold what the pairs leave open (pair_amplitude_solve notes).
+    rp, sp = totals.receiver_pairs, totals.source_pairs
+    rcv_amp = pair_amplitude_solve(rp.pairs, rp.cross, rp.count, prior=rcv_amp)
+    src_amp = pair_amplitude_solve(sp.pairs, sp.cross, sp.count, prior=src_amp)
     method = config.estimate.phase_method
     rph = _phases(client, totals.receiver_pairs, n_rcv, method)
     sph = _phases(client, totals.source_pairs, n_src, method)

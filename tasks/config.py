@@ -162,6 +162,13 @@ class EstimateConfig(_Section):
                              json_schema_extra=_unit("m"))
     min_pairs: int = Field(3, ge=1, description="stations with fewer pairs get the identity filter",
                            json_schema_extra=_unit("pairs"))
+    smoothing_hz: float = Field(
+        2.0, ge=0.0,
+        description="half-width of the triangular smoothing of the pair sums over frequency before the solves "
+                    "(a lag window sinc^2 on the pair cross-correlations, half height near 0.44 / smoothing_hz s: "
+                    "keep that longer than the station filters' coda); 0 for none",
+        json_schema_extra=_unit("Hz"),
+    )
     phase_method: Literal["laplacian", "eigen"] = Field(
         "laplacian", description="phase solve: pinned connection Laplacian or leading eigenvector",
         json_schema_extra=_unit("choice"),

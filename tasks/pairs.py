@@ -483,3 +483,57 @@ def source_pair_sums_between(spectra_a, spectra_b, *, shot_source_a, receiver_a,
         raise ConfigError(f"spectra_a has {sa.shape[1]} frequencies and spectra_b {sb.shape[1]}; expected the same band")
     return _pair_sums([(sa, receiver_a, shot_source_a, live_a), (sb, receiver_b, shot_source_b, live_b)],
                       pairs, between=True)
+
+
+# --------------------------------------------------------------------------- smoothing over frequency
+
+
+def smooth_over_frequency(values, *, bin_hz: float, half_width_hz: float) -> np.ndarray:
+    """Triangular running mean along the last (frequency) axis, symmetric at every bin.
+
+    values float or complex [..., n_freq] on bins ``bin_hz`` apart. Output bin ``m`` is
+    ``sum_k w_k x[m + k] / sum_k w_k`` with ``w_k = 1 - |k| bin_hz / half_width_hz`` for
+    ``|k| < half_width_hz / bin_hz`` and ``|k| <= min(m, n_freq - 1 - m)``: near the band
+    edges the kernel shrinks symmetrically (the edge bins are kept as they are), so a
+    linear phase ``exp(-2 pi i f tau)`` keeps its slope at every bin (a one-sided kernel
+    would bend it and move the statics). ``half_width_hz <= bin_hz`` returns a copy.
+    Linear, so it commutes with the sums over shots and swaths.
+
+    Why: windows much longer than the station filters give spectra finer than the
+    filters need, and each bin of a pair sum carries its own noise. In time the
+    triangle is the lag window ``sinc^2(half_width_hz * lag)`` on the pair
+    cross-correlations (0.5 at about 0.44 / half_width_hz), which keeps the lags of
+    the relative station filters and drops the noise at longer lags.
+    Returns an array of the input's dtype (float64 or complex128) and shape.
+    """
+    x = np.asarray(values)
+    x = x.astype(np.complex128 if np.iscomplexobj(x) else np.float64, copy=True)
+    if not (np.isfinite(bin_hz) and bin_hz > 0 and np.isfinite(half_width_hz) and half_width_hz >= 0):
+        raise ConfigError(f"bin_hz = {bin_hz}, half_width_hz = {half_width_hz}: expected a bin spacing > 0 "
+                          "and a smoothing half-width >= 0 in Hz")
+    n = x.shape[-1]
+    reach = int(np.ceil(half_width_hz / bin_hz)) - 1  # the last lag with a positive weight
+    if reach < 1 or n < 3:
+        return x
+    m = np.arange(n)
+    room = np.minimum(m, n - 1 - m)
+    total = np.array(x)
+    norm = np.ones(n)
+    for k in range(1, reach + 1):
+        w = np.where(room >= k, 1.0 - k * bin_hz / half_width_hz, 0.0)
+        lo, hi = np.zeros_like(x), np.zeros_like(x)
+        lo[..., k:] = x[..., :-k]  # x[m - k]
+        hi[..., :-k] = x[..., k:]  # x[m + k]
+        total += w * (lo + hi)
+        norm += 2 * w
+    return total / norm
+
+
+def smooth_pair_sums(sums: PairSums, *, bin_hz: float, half_width_hz: float) -> PairSums:
+    """The pair sums with ``cross``, ``power_a`` and ``power_b`` smoothed over frequency by
+    :func:`smooth_over_frequency` (pairs and counts unchanged): the coherence of the result
+    is that of band-averaged spectra."""
+    return PairSums(sums.pairs, smooth_over_frequency(sums.cross, bin_hz=bin_hz, half_width_hz=half_width_hz),
+                    smooth_over_frequency(sums.power_a, bin_hz=bin_hz, half_width_hz=half_width_hz),
+                    smooth_over_frequency(sums.power_b, bin_hz=bin_hz, half_width_hz=half_width_hz),
+                    sums.count)

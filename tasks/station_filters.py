@@ -396,3 +396,50 @@ def with_identity(response: np.ndarray, mask: np.ndarray) -> np.ndarray:
     r[m] = 1.0
     r[~np.isfinite(r)] = 1.0
     return r
+
+
+def smooth_gauge(response: np.ndarray, *, freqs_hz: np.ndarray, component: np.ndarray | None = None) -> np.ndarray:
+    """Re-gauge station responses so the common phase they share varies smoothly with frequency.
+
+    Pair statistics fix only relative phases: every station of a component can take the
+    same unit factor ``g(f)`` at each frequency. The phase solve's gauge (circular mean
+    phase zero per frequency) makes ``g`` the conjugate of the stations' mean phasor,
+    which wanders from bin to bin once codas and statics decorrelate the stations (on
+    the synthetic demo survey that mean explains only 61% of its energy as one spike),
+    and that common roughness is put into every station's filter. Here instead, per
+    component, the mean phase increment between neighbouring bins is made zero,
+    ``g(f_{m+1}) = g(f_m) conj(q_m / |q_m|)`` with ``q_m = sum_j R_j(f_{m+1}) conj(R_j(f_m))``
+    (an energy-weighted mean group delay of zero), and the one constant phase left is set
+    so that ``sum_j G_j`` is real and positive, with ``G_j = sum_f R_j(f) exp(2 pi i f t_j)``
+    at each station's best delay ``t_j`` (:func:`best_spike` with a phase rotation): real
+    for a spike of real amplitude. Relative filters ``R_j conj(R_k)`` are
+    unchanged. Measured (Spearman rank of the scattering fraction against the truth,
+    receivers): true responses under the per-frequency gauge 0.68 (tiny) and 0.46 (demo),
+    re-gauged 0.71 and 0.74 (the true responses as they are: 0.71 and 0.75).
+
+    response complex [n, n_freq] on evenly spaced ``freqs_hz``; component int [n]
+    (label -1: left as is) or None (one component). Returns complex128 [n, n_freq].
+    """
+    r = np.array(response, dtype=np.complex128)
+    if r.ndim != 2:
+        raise ConfigError(f"response: got shape {r.shape}; expected [n_stations, n_freq]")
+    f = _freqs(freqs_hz, r.shape[1])
+    labels, k = _labels(component, r.shape[0])
+    if r.shape[1] < 2:
+        return r
+    _check_uniform(f)
+    for c in range(k):
+        rows = np.flatnonzero(labels == c)
+        if not len(rows):
+            continue
+        q = (r[rows, 1:] * np.conj(r[rows, :-1])).sum(axis=0)
+        step = np.where(np.abs(q) > 0, np.conj(q) / np.where(np.abs(q) > 0, np.abs(q), 1.0), 1.0)
+        g = np.concatenate([[1.0 + 0j], np.cumprod(step)])
+        r[rows] *= g
+        # the constant: each station's best spike up to a rotation, G_j = sum_f R_j exp(2 pi i f t_j);
+        # a real spike has G_j real, so rotate the component's sum of G_j to the real axis
+        _, t = best_spike(r[rows], freqs_hz=f, weight=np.ones(len(f)), phase_rotation=True)
+        s = np.sum(r[rows] * np.exp(2j * np.pi * np.outer(t, f)))
+        if abs(s) > 0:
+            r[rows] *= np.conj(s) / abs(s)
+    return r

@@ -120,15 +120,19 @@ def _relative_filter_quality(survey: Path, store: Path, tmp_path: Path) -> tuple
 
 
 def test_relative_filters_and_scattering_rank_do_not_regress(scatter, tmp_path):
-    # Measured on this tiny survey (24 shots, noise 0.5): 0.77 and 0.48; the
-    # floor below guards against regressions while the method improves.
+    # Measured on this tiny survey (24 shots, noise 0.5): 0.881 and 0.670 (with
+    # pair sums smoothed over 2 Hz, amplitudes from the pair magnitudes and the
+    # smooth phase gauge; 0.767 and 0.480 before them). On the demo survey (100
+    # shots) 0.936 and 0.731. The ceiling here: the true responses in the
+    # 10-65 Hz band rank at 0.71, and noise-free traces reach a median of 0.94.
+    # The floors guard against regressions while the method improves.
     median_corr, rho = _relative_filter_quality(scatter[0], scatter[1], tmp_path)
-    assert median_corr >= 0.7
-    assert rho >= 0.35
+    assert median_corr >= 0.85
+    assert rho >= 0.6
 
 
 @pytest.mark.xfail(strict=True, reason="method targets not reached yet on the tiny survey "
-                                       "(measured 0.77 and 0.48); XPASS means update the floor above")
+                                       "(measured 0.881 and 0.670); XPASS means update the floor above")
 def test_relative_filters_and_scattering_rank_reach_targets(scatter, tmp_path):
     median_corr, rho = _relative_filter_quality(scatter[0], scatter[1], tmp_path)
     assert median_corr >= 0.9 and rho >= 0.7

@@ -258,3 +258,26 @@ def test_stations_with_too_few_pairs_get_the_identity_filter():
     fixed = with_identity(response, mask)
     assert np.all(np.isfinite(fixed)) and np.all(fixed[1:3] == 1.0)
     np.testing.assert_array_equal(fixed[[0, 3]], response[[0, 3]])
+
+
+def test_smooth_gauge_removes_a_rough_common_phase_and_keeps_relative_filters():
+    from descatter.tasks.station_filters import smooth_gauge
+
+    rng = np.random.default_rng(21)
+    f = 10.0 + 0.5 * np.arange(110)
+    n = 40
+    tau = rng.normal(scale=0.006, size=n)
+    spikes = np.exp(rng.normal(scale=0.2, size=(n, 1))) * np.exp(-2j * np.pi * np.outer(tau, f))
+    # the phase solve may hand back any common factor per frequency: a rough one here
+    rough = spikes * np.exp(1j * rng.uniform(-np.pi, np.pi, len(f)))[None, :]
+    ones = np.ones(len(f))
+    assert np.median(scattering_fraction(rough, freqs_hz=f, weight=ones)) > 0.5
+    got = smooth_gauge(rough, freqs_hz=f)
+    # delayed spikes again (a common delay and polarity aside)
+    assert np.max(scattering_fraction(got, freqs_hz=f, weight=ones)) < 1e-3
+    np.testing.assert_allclose(got[:5] * np.conj(got[5:10]), rough[:5] * np.conj(rough[5:10]), rtol=1e-9)
+    # per component, and label -1 untouched
+    labels = np.repeat([0, 1, -1, 0], 10)
+    two = smooth_gauge(rough, freqs_hz=f, component=labels)
+    assert np.array_equal(two[20:30], rough[20:30])
+    assert np.max(scattering_fraction(two[labels >= 0], freqs_hz=f, weight=ones)) < 1e-3
