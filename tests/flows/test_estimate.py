@@ -205,3 +205,42 @@ def test_apply_corrects_passes_dead_traces_and_exports(scatter, client, tmp_path
         assert np.array_equal(f.trace.raw[: len(cor)], cor)
         assert all(dict(f.header[i]) == dict(g.header[i]) for i in (0, 7, len(cor) - 1))
     assert s.array("line01", "corrected").attrs["mode"] == "full"
+
+
+@pytest.mark.slow
+def test_demo_survey_reaches_the_method_targets(client, tmp_path_factory, tmp_path):
+    """On the demo-size scattering survey (100 shots, seed 7): relative filters
+    >= 0.9 median correlation and receiver scattering-fraction Spearman >= 0.7
+    (measured 0.936 and 0.732); after correction, mean semblance of
+    NMO-corrected shot gathers at least doubles in the high-scattering zone
+    (measured 0.110 -> 0.570)."""
+    from descatter.flows.apply import apply_solution
+    from descatter.flows.report import write_report
+    from descatter.flows.synth import write_synthetic_survey
+
+    survey = tmp_path_factory.mktemp("demo_scatter")
+    write_synthetic_survey(survey, scenario="scatter", size="demo", seed=7)
+    store = tmp_path_factory.mktemp("demo_store") / "s.zarr"
+    _estimated(survey, store, client)
+    truth = read_arrays(survey / "truth.npz")
+    spec = synthetic_spec(size="demo", scenario="scatter", seed=7)
+    sid, arrays, _ = read_solution(SurveyStore.open(store))
+    from descatter.storage.stations import read_stations
+
+    table = read_stations(SurveyStore.open(store), "receivers")
+    t_of = np.hypot(table["x"][:, None] - truth["receiver_x"][None],
+                    table["y"][:, None] - truth["receiver_y"][None]).argmin(axis=1)
+    true_resp = station_response(station_truth(spec), "receiver", arrays["freq_hz"])[t_of]
+    est = arrays["receiver_response"].astype(np.complex128)
+    pairs = load_totals(SurveyStore.open(store)).receiver_pairs.pairs
+    a = est[pairs[:, 0]] * np.conj(est[pairs[:, 1]])
+    b = true_resp[pairs[:, 0]] * np.conj(true_resp[pairs[:, 1]])
+    corr = np.real(np.sum(a * np.conj(b), axis=1)) / (np.linalg.norm(a, axis=1) * np.linalg.norm(b, axis=1))
+    ok = ~arrays["receiver_identity"]
+    rho = spearmanr(arrays["receiver_scattering_fraction"][ok], truth["receiver_scattering_fraction"][t_of][ok]).statistic
+    print(f"demo: relative filter median {np.median(corr):.3f}, receiver Spearman {rho:.3f}")
+    assert np.median(corr) >= 0.9 and rho >= 0.7
+    apply_solution(store, load_config(survey / "survey.toml"), client=client)
+    rep = write_report(store, tmp_path / "report")
+    print(f"demo: high-zone semblance {rep['high_zone_semblance_before']:.3f} -> {rep['high_zone_semblance_after']:.3f}")
+    assert rep["high_zone_semblance_after"] >= 2 * rep["high_zone_semblance_before"]
