@@ -95,3 +95,75 @@ def test_killed_stage_resumes_bit_identical(stage, command, tiny_survey, client,
     if stage != "stats":
         assert any(r.get("resumed") for r in batches)  # finished chunks were not redone
     assert not list(killed.rglob("*.partial"))
+
+
+def _free_port() -> int:
+    import socket
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def test_lost_worker_mid_stage_still_gives_identical_results(tiny_survey, client, tmp_path):
+    """A real `dask scheduler` and two `dask worker` processes on 127.0.0.1;
+    one worker is killed (SIGKILL) while the spectra stage runs."""
+    import signal
+    import threading
+    import time
+
+    from descatter.flows.ingest import ingest_swaths
+    from descatter.flows.solve import estimate_survey
+    from descatter.storage.config_file import load_config
+
+    cfg = load_config(tiny_survey / "survey.toml")
+    cfg.ingest.chunk_traces = 64
+    reference, store = tmp_path / "ref.zarr", tmp_path / "s.zarr"
+    ingest_swaths(reference, _lines(tiny_survey), cfg, client=client)
+    shutil.copytree(reference, store)
+    estimate_survey(reference, cfg, client=client)
+
+    port = _free_port()
+    procs = [subprocess.Popen([sys.executable, "-m", "distributed.cli.dask_scheduler", "--host", "127.0.0.1",
+                               "--port", str(port), "--no-dashboard"],
+                              stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True)]
+    address = f"tcp://127.0.0.1:{port}"
+    try:
+        time.sleep(2)
+        for _ in range(2):
+            procs.append(subprocess.Popen([sys.executable, "-m", "distributed.cli.dask_worker", address,
+                                           "--nthreads", "1", "--no-dashboard", "--no-nanny"],
+                                          stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+                                          start_new_session=True))
+        killed = threading.Event()
+
+        def kill_when_started():
+            deadline = time.time() + 120
+            while time.time() < deadline:
+                if any(r["stage"] == "spectra" and r["event"] == "batch" for r in read_runlog(store)):
+                    procs[1].send_signal(signal.SIGKILL)
+                    killed.set()
+                    return
+                time.sleep(0.01)
+
+        from descatter.storage.config_file import dump_config
+
+        cfg_path = tmp_path / "c.toml"
+        cfg_path.write_text(dump_config(cfg))
+        time.sleep(3)  # both workers registered
+        watcher = threading.Thread(target=kill_when_started, daemon=True)
+        watcher.start()
+        # the run is its own process with one client, as a user's would be
+        proc = _cli("estimate", str(store), "--config", str(cfg_path), "--cluster", address)
+        watcher.join(5)
+        assert proc.returncode == 0, proc.stderr
+        assert killed.is_set() and procs[1].wait(10) == -signal.SIGKILL
+        _, a, _ = read_solution(SurveyStore.open(reference))
+        _, b, _ = read_solution(SurveyStore.open(store))
+        for key in ("receiver_response", "source_response", "receiver_static_ms"):
+            assert np.array_equal(a[key], b[key]), key
+    finally:
+        for p in procs:
+            if p.poll() is None:
+                p.kill()
+            p.wait(10)
