@@ -43,6 +43,12 @@ def _progress(description: str):
     )
 
 
+def _watch(client) -> None:
+    from descatter.flows.cluster import dashboard_text
+
+    err_console.print(dashboard_text(client), highlight=False)
+
+
 # -- config ---------------------------------------------------------------
 
 @config_app.command("init")
@@ -128,6 +134,7 @@ def ingest(
 
     cfg = load_config(config)
     with _progress("ingest") as bar, dask_client(cluster, workers=workers, memory_limit=memory_limit) as client:
+        _watch(client)
         tasks: dict[str, int] = {}
 
         def progress(swath: str, done: int, total: int) -> None:
@@ -164,6 +171,7 @@ def estimate(
 
     cfg = config_for_store(store, config)
     with _progress("estimate") as bar, dask_client(cluster, workers=workers, memory_limit=memory_limit) as client:
+        _watch(client)
         tasks: dict[str, int] = {}
 
         def progress(stage: str, done: int, total: int) -> None:
@@ -205,6 +213,7 @@ def apply(
     except ValueError as exc:
         raise DescatterError(f"bad option: {exc}") from None
     with _progress("apply") as bar, dask_client(cluster, workers=workers, memory_limit=memory_limit) as client:
+        _watch(client)
         task = bar.add_task("apply", total=None)
         result = apply_solution(store, cfg, client=client, solution=solution,
                                 progress=lambda stage, done, total: bar.update(task, completed=done, total=total))

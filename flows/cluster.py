@@ -57,5 +57,18 @@ def dask_client(
     if memory_limit:
         kwargs["memory_limit"] = memory_limit
     with LocalCluster(**kwargs) as lc, Client(lc) as client:
-        log.info("local Dask cluster: %d worker(s), %s", len(lc.workers), "processes" if cluster == "local" else "threads")
+        log.info("local Dask cluster: %d worker(s), %s; %s", len(lc.workers),
+                 "processes" if cluster == "local" else "threads", dashboard_text(client))
         yield client
+
+
+def dashboard_text(client) -> str:
+    """Where to watch the cluster: the scheduler and its dashboard (the
+    dashboard needs the optional bokeh package)."""
+    try:
+        import bokeh  # noqa: F401
+
+        link = client.dashboard_link
+    except ImportError:
+        link = "not available (pip install bokeh)"
+    return f"Dask scheduler {client.scheduler.address}, dashboard {link}"

@@ -37,14 +37,27 @@ from descatter.storage.config_file import config_for_store, load_config  # noqa:
 
 
 def _progress_logger(stage: str):
+    """Progress to the flow-run log every 10%, and to a Prefect progress
+    artifact (shown in the server's UI) for the stage."""
+    from prefect.artifacts import create_progress_artifact, update_progress_artifact
+
     logger = get_run_logger()
-    last = {"pct": -10}
+    last = {"pct": -10, "artifact": None}
 
     def progress(name: str, done: int, total: int) -> None:
         pct = int(100 * done / max(total, 1))
         if pct >= last["pct"] + 10 or done == total:
             last["pct"] = pct
             logger.info("%s %s: %d/%d (%d%%)", stage, name, done, total, pct)
+            try:
+                if last["artifact"] is None:
+                    last["artifact"] = create_progress_artifact(
+                        float(pct), description=f"descatter {stage}: {name} {done}/{total}")
+                else:
+                    update_progress_artifact(last["artifact"], float(pct),
+                                             description=f"descatter {stage}: {name} {done}/{total}")
+            except Exception as exc:  # progress display must never fail a run
+                logger.debug("progress artifact not updated: %s", exc)
 
     return progress
 
@@ -81,8 +94,9 @@ def _client(cluster: str, workers: int | None, memory_limit: str | None):
 
 
 def _announce(client) -> None:
-    link = getattr(client, "dashboard_link", None)
-    get_run_logger().info("Dask scheduler %s, dashboard %s", client.scheduler.address, link or "none")
+    from descatter.flows.cluster import dashboard_text
+
+    get_run_logger().info(dashboard_text(client))
 
 
 @flow(name="descatter-ingest")
