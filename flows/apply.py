@@ -18,19 +18,16 @@ from pathlib import Path
 
 import numpy as np
 
-from descatter.storage.atomic import sweep_partials
+from descatter.flows.writer import store_writer
 from descatter.storage.checkpoints import Checkpoints
 from descatter.storage.estimation import corrected_settings, create_corrected, read_solution, write_corrected_chunk
 from descatter.storage.faults import fault_point
-from descatter.storage.lock import StoreLock
-from descatter.storage.runlog import RunLog
 from descatter.storage.stations import read_qc_flags, read_swath_geometry
 from descatter.storage.store import SurveyStore
 from descatter.tasks.config import SurveyConfig
 from descatter.tasks.correction import (
     apply_correction, band_to_full_grid, correction_n_fft, filter_spectra, grid_band_weight, trace_correction,
 )
-from descatter.tasks.errors import InputNotFoundError
 
 log = logging.getLogger(__name__)
 
@@ -106,12 +103,7 @@ def apply_solution(store_path: str | Path, config: SurveyConfig, *, client, solu
     from distributed import as_completed
 
     t0 = time.perf_counter()
-    with StoreLock(store_path, command="apply"):
-        store = SurveyStore.open(store_path, writable=True)
-        if not store.swath_names():
-            raise InputNotFoundError(f"{store.path}: no committed swath to correct")
-        sweep_partials(store.path)
-        runlog = RunLog(store.path)
+    with store_writer(store_path, "apply") as (store, runlog):
         sid, sol, attrs = read_solution(store, solution)
         settings = correction_settings(store, sid, attrs, sol, config)
         records = store.manifest()

@@ -171,20 +171,11 @@ def estimate_survey(store_path, config: SurveyConfig, *, client, progress=None) 
     import time
 
     from descatter.flows.estimate import run_statistics, spectra_params
-    from descatter.storage.atomic import sweep_partials
     from descatter.storage.estimation import list_solutions, solution_attrs, write_solution
-    from descatter.storage.lock import StoreLock
-    from descatter.storage.runlog import RunLog
+    from descatter.flows.writer import store_writer
 
     t0 = time.perf_counter()
-    with StoreLock(store_path, command="estimate"):
-        store = SurveyStore.open(store_path, writable=True)
-        if not store.swath_names():
-            from descatter.tasks.errors import InputNotFoundError
-
-            raise InputNotFoundError(f"{store.path}: no committed swath to estimate from (run 'descatter ingest')")
-        sweep_partials(store.path)
-        runlog = RunLog(store.path)
+    with store_writer(store_path, "estimate") as (store, runlog):
         runlog.write("estimate", "start", swaths=store.swath_names())
         stats = run_statistics(store, config, client=client, runlog=runlog, progress=progress)
         n_fft = spectra_params(config, dt_s=store.sample_interval_s)["n_fft"]
