@@ -22,17 +22,18 @@ from descatter.flows.writer import store_writer
 from descatter.storage.checkpoints import Checkpoints
 from descatter.storage.estimation import corrected_settings, create_corrected, read_solution, write_corrected_chunk
 from descatter.storage.faults import fault_point
-from descatter.storage.stations import read_qc_flags, read_swath_geometry
 from descatter.storage.store import SurveyStore
 from descatter.tasks.config import SurveyConfig
 from descatter.tasks.correction import (
     apply_correction, band_to_full_grid, correction_n_fft, filter_spectra, grid_band_weight, trace_correction,
 )
+from descatter.tasks.trace_qc import usable_traces
 
 log = logging.getLogger(__name__)
 
 STAGE = "apply"
 STAGE_VERSION = 1
+SOLUTION_ARRAYS = ("source_filter", "receiver_filter", "source_identity", "receiver_identity")
 
 
 def _station_grid(solution: dict, kind: str, rows: np.ndarray, *, lead_s: float, dt_s: float, n_fft: int,
@@ -53,12 +54,13 @@ def apply_chunk(store_path: str, swath: str, chunk: int, start: int, stop: int, 
         return {"chunk": chunk, "traces": stop - start, "resumed": True, "seconds": 0.0, "passed": 0}
     t0 = time.perf_counter()
     store = SurveyStore.open(store_path)
-    _, sol, attrs = read_solution(store, solution_id)
+    # only what this chunk needs: its own rows and the filters, not the whole solution
+    _, sol, attrs = read_solution(store, solution_id, names=SOLUTION_ARRAYS)
     traces = store.array(swath, "traces")[start:stop]
-    g = read_swath_geometry(store, swath, ["source_index", "receiver_index"])
-    si, ri = g["source_index"][start:stop], g["receiver_index"][start:stop]
-    flags = read_qc_flags(store, swath)[start:stop]
-    passthrough = ((flags & np.uint16(settings["exclude_bits"])) != 0) | (si < 0) | (ri < 0)
+    si = store.array(swath, "geometry/source_index")[start:stop]
+    ri = store.array(swath, "geometry/receiver_index")[start:stop]
+    flags = store.array(swath, "qc_flags")[start:stop]
+    passthrough = ~usable_traces(flags, si, ri, exclude_bits=settings["exclude_bits"])
     passthrough |= sol["source_identity"][np.maximum(si, 0)] & sol["receiver_identity"][np.maximum(ri, 0)]
     n_fft = settings["n_fft"]
     dt = attrs["dt_s"]

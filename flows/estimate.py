@@ -24,7 +24,7 @@ import numpy as np
 from descatter.storage.atomic import read_json, write_json_atomic
 from descatter.storage.checkpoints import CHECKPOINTS, Checkpoints
 from descatter.storage.estimation import (
-    create_spectra, has_stats, read_spectra, spectra_shape, write_spectra_chunk, write_stats,
+    create_spectra, read_spectra, spectra_shape, write_spectra_chunk, write_stats,
 )
 from descatter.storage.faults import fault_point
 from descatter.storage.runlog import RunLog
@@ -38,6 +38,7 @@ from descatter.tasks.pairs import (
 )
 from descatter.tasks.spectra import band_frequencies, windowed_spectra
 from descatter.tasks.statistics import LogPowerSums, PairSums
+from descatter.tasks.trace_qc import usable_traces
 
 log = logging.getLogger(__name__)
 
@@ -61,11 +62,6 @@ def spectra_params(config: SurveyConfig, *, dt_s: float) -> dict:
         "moveout": a.moveout, "lmo_velocity_mps": a.lmo_velocity_mps,
         "velocity_t0_s": v[:, 0].tolist(), "velocity_vrms_mps": v[:, 1].tolist(),
     }
-
-
-def live_mask(flags: np.ndarray, config: SurveyConfig, station_index: np.ndarray) -> np.ndarray:
-    """Traces the estimation uses: no QC flag whose policy is exclude, and a station."""
-    return ((flags & np.uint16(config.qc.exclude_bits())) == 0) & (station_index >= 0)
 
 
 # -- spectra -------------------------------------------------------------
@@ -99,7 +95,7 @@ def _swath_inputs(store_path: str, swath: str, exclude_bits: int):
     store = SurveyStore.open(store_path)
     g = read_swath_geometry(store, swath, ["shot", "source_index", "receiver_index", "offset"])
     flags = read_qc_flags(store, swath)
-    live = ((flags & np.uint16(exclude_bits)) == 0) & (g["source_index"] >= 0) & (g["receiver_index"] >= 0)
+    live = usable_traces(flags, g["source_index"], g["receiver_index"], exclude_bits=exclude_bits)
     return g, live
 
 

@@ -65,7 +65,7 @@ def header_dtypes(layout: dict[str, tuple[int, int]]) -> dict[str, str]:
 
 def ingest_chunk(
     store_path: str, info: SegyInfo, swath: str, chunk: int, start: int, stop: int,
-    layout: dict[str, tuple[int, int]], fingerprint: str, clip_run: int,
+    fingerprint: str, clip_run: int,
 ) -> dict:
     """One chunk: read traces [start, stop), write every array's chunk, flag it.
 
@@ -223,7 +223,6 @@ def ingest_swaths(
         plans = _plan(store, paths, config, report, runlog)
         if not plans:
             return report
-        layout = config.ingest.headers.layout()
         runlog.write(STAGE, "start", swaths=[p.name for p in plans],
                      traces=sum(p.info.n_traces for p in plans))
         try:
@@ -235,7 +234,7 @@ def ingest_swaths(
                 for chunk, (a, b) in enumerate(plan.bounds):
                     fut = client.submit(
                         ingest_chunk, str(store_path), plan.info, plan.name, chunk, a, b,
-                        layout, plan.fingerprint, config.qc.clip_run, key=f"ingest-{plan.name}-{chunk}-{plan.fingerprint[:8]}",
+                        plan.fingerprint, config.qc.clip_run, key=f"ingest-{plan.name}-{chunk}-{plan.fingerprint[:8]}",
                         pure=False,
                     )
                     futures[fut] = plan

@@ -18,7 +18,7 @@ from pathlib import Path
 import numpy as np
 
 from descatter.flows import report_figures as figs
-from descatter.flows.estimate import live_mask
+from descatter.tasks.trace_qc import usable_traces
 from descatter.flows.report_page import CAUTION, build_page
 from descatter.storage.checkpoints import Checkpoints
 from descatter.storage.config_file import parse_config
@@ -143,7 +143,8 @@ def _shot_table(store: SurveyStore, config: SurveyConfig, receivers_wanted: set[
     wanted = np.array(sorted(receivers_wanted), np.int64)
     for pos, name in enumerate(store.swath_names()):
         g = read_swath_geometry(store, name, ["shot", "source_index", "receiver_index"])
-        live = live_mask(read_qc_flags(store, name), config, g["source_index"]) & (g["receiver_index"] >= 0)
+        live = usable_traces(read_qc_flags(store, name), g["source_index"], g["receiver_index"],
+                             exclude_bits=config.qc.exclude_bits())
         shots, first, count = np.unique(g["shot"][live], return_index=True, return_counts=True)
         cols["swath"].append(np.full(len(shots), pos))
         cols["shot"].append(shots)
@@ -182,7 +183,8 @@ def _trace_metrics(store: SurveyStore, config: SurveyConfig, table: ShotTable, c
         if entries.size == 0:
             continue
         g = read_swath_geometry(store, name, ["shot", "source_index", "receiver_index", "offset", "cmp_x", "cmp_y"])
-        live = live_mask(read_qc_flags(store, name), config, g["source_index"]) & (g["receiver_index"] >= 0)
+        live = usable_traces(read_qc_flags(store, name), g["source_index"], g["receiver_index"],
+                             exclude_bits=config.qc.exclude_bits())
         delay = store.array(name, "headers/delay_ms")[:] * 1e-3
         cum = np.cumsum(table.count[entries])
         for batch in np.split(entries, np.flatnonzero(np.diff((cum - 1) // BATCH_TRACES)) + 1):
@@ -258,7 +260,8 @@ def _display_gather(store: SurveyStore, config: SurveyConfig, table: ShotTable, 
     best = np.lexsort((-table.count, -frac))[0]
     name = store.swath_names()[table.swath[best]]
     g = read_swath_geometry(store, name, ["shot", "source_index", "receiver_index", "offset"])
-    live = live_mask(read_qc_flags(store, name), config, g["source_index"]) & (g["receiver_index"] >= 0)
+    live = usable_traces(read_qc_flags(store, name), g["source_index"], g["receiver_index"],
+                             exclude_bits=config.qc.exclude_bits())
     rows = np.flatnonzero(live & (g["shot"] == table.shot[best]))
     delay = store.array(name, "headers/delay_ms")[:][rows] * 1e-3
     out = {"swath": name, "shot": int(table.shot[best]), "source": int(table.source[best]),

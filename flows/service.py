@@ -3,8 +3,8 @@
 Each flow owns one ``distributed.Client`` (an embedded local cluster by
 default, or a scheduler address) and runs the stages as coarse Prefect
 tasks: a stage is one task, and its chunk work goes straight to the Dask
-client from inside it (about 0.1 s per Prefect task, measured, so chunks
-never become Prefect tasks). Checkpoints live in the store, not in Prefect's
+client from inside it (each Prefect task run costs far more than a chunk's
+Dask task, so chunks never become Prefect tasks). Checkpoints live in the store, not in Prefect's
 result cache. Flow names: ``descatter-run``, ``descatter-ingest``,
 ``descatter-estimate``, ``descatter-apply``; parameters ``store``,
 ``files``, ``config``.
@@ -88,11 +88,6 @@ def apply_stage(store: str, config_path: str | None, client, solution: str | Non
     return {k: result[k] for k in ("solution", "traces", "passed_through", "resumed_chunks")}
 
 
-def _client(cluster: str, workers: int | None, memory_limit: str | None):
-    ctx = dask_client(cluster, workers=workers, memory_limit=memory_limit)
-    return ctx
-
-
 def _announce(client) -> None:
     from descatter.flows.cluster import dashboard_text
 
@@ -103,7 +98,7 @@ def _announce(client) -> None:
 def ingest_flow(store: str, files: list[str], config: str | None = None, cluster: str = "local",
                 workers: int | None = None, memory_limit: str | None = None) -> dict:
     """Add SEG-Y swaths to a survey store."""
-    with _client(cluster, workers, memory_limit) as client:
+    with dask_client(cluster, workers=workers, memory_limit=memory_limit) as client:
         _announce(client)
         return ingest_stage(store, [str(f) for f in files], config, client)
 
@@ -112,7 +107,7 @@ def ingest_flow(store: str, files: list[str], config: str | None = None, cluster
 def estimate_flow(store: str, config: str | None = None, cluster: str = "local", workers: int | None = None,
                   memory_limit: str | None = None) -> dict:
     """Spectra, pair statistics and the global solve: a new current solution."""
-    with _client(cluster, workers, memory_limit) as client:
+    with dask_client(cluster, workers=workers, memory_limit=memory_limit) as client:
         _announce(client)
         return estimate_stage(store, config, client)
 
@@ -121,7 +116,7 @@ def estimate_flow(store: str, config: str | None = None, cluster: str = "local",
 def apply_flow(store: str, config: str | None = None, solution: str | None = None, cluster: str = "local",
                workers: int | None = None, memory_limit: str | None = None) -> dict:
     """Correct every trace with a solution's filters."""
-    with _client(cluster, workers, memory_limit) as client:
+    with dask_client(cluster, workers=workers, memory_limit=memory_limit) as client:
         _announce(client)
         return apply_stage(store, config, client, solution)
 
@@ -130,7 +125,7 @@ def apply_flow(store: str, config: str | None = None, solution: str | None = Non
 def run_flow(store: str, files: list[str], config: str | None = None, cluster: str = "local",
              workers: int | None = None, memory_limit: str | None = None) -> dict:
     """ingest -> estimate -> apply, on one Dask cluster."""
-    with _client(cluster, workers, memory_limit) as client:
+    with dask_client(cluster, workers=workers, memory_limit=memory_limit) as client:
         _announce(client)
         out = {"ingest": ingest_stage(store, [str(Path(f)) for f in files], config, client)}
         out["estimate"] = estimate_stage(store, config, client)

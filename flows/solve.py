@@ -81,7 +81,7 @@ def _phases(client, pairs: PairSums, n_stations: int, method: str):
 
 
 def station_attributes(kind: str, amp_term: np.ndarray, phase, pairs: PairSums, n: int, freqs: np.ndarray,
-                       config: SurveyConfig, dt_s: float, n_fft: int, amp_residual: np.ndarray) -> dict:
+                       config: SurveyConfig, dt_s: float, n_fft: int) -> dict:
     """Response, filter and attributes of one station kind."""
     est = config.estimate
     count = sf.pair_counts(pairs.pairs, pairs.count, n)
@@ -150,10 +150,8 @@ def solve_stations(store: SurveyStore, config: SurveyConfig, freqs: np.ndarray, 
     dt = store.sample_interval_s
     arrays = {"freq_hz": freqs, "amplitude_residual_rms": amp.residual_rms,
               "receiver_phase_residual": rph.residual, "source_phase_residual": sph.residual}
-    arrays |= station_attributes("source", src_amp, sph, totals.source_pairs, n_src, freqs, config, dt, n_fft,
-                                 amp.residual_rms)
-    arrays |= station_attributes("receiver", rcv_amp, rph, totals.receiver_pairs, n_rcv, freqs, config, dt, n_fft,
-                                 amp.residual_rms)
+    arrays |= station_attributes("source", src_amp, sph, totals.source_pairs, n_src, freqs, config, dt, n_fft)
+    arrays |= station_attributes("receiver", rcv_amp, rph, totals.receiver_pairs, n_rcv, freqs, config, dt, n_fft)
     summary = {
         "statistics": totals.keys,
         "receiver_components": int(rph.n_components), "source_components": int(sph.n_components),

@@ -178,8 +178,10 @@ def solution_attrs(store: SurveyStore, sid: str) -> dict[str, Any]:
     return dict(zarr.open_group(str(store.path), path=f"{SOLUTIONS}/{sid}", mode="r").attrs)
 
 
-def read_solution(store: SurveyStore, sid: str | None = None) -> tuple[str, dict[str, np.ndarray], dict[str, Any]]:
-    """(id, arrays, attrs) of a solution; the current one by default."""
+def read_solution(store: SurveyStore, sid: str | None = None, *,
+                  names: tuple[str, ...] | None = None) -> tuple[str, dict[str, np.ndarray], dict[str, Any]]:
+    """(id, arrays, attrs) of a solution; the current one by default; only
+    the arrays in ``names`` when given."""
     sid = sid or store.attrs.get("current_solution")
     if not sid:
         raise InputNotFoundError(f"{store.path}: no solution yet (run 'descatter estimate')")
@@ -187,4 +189,6 @@ def read_solution(store: SurveyStore, sid: str | None = None) -> tuple[str, dict
         known = ", ".join(list_solutions(store)) or "none"
         raise StoreFormatError(f"{store.path}: no solution {sid!r} (solutions: {known})")
     g = zarr.open_group(str(store.path), path=f"{SOLUTIONS}/{sid}", mode="r")
+    if names is not None:
+        return sid, {name: g[name][...] for name in names}, dict(g.attrs)
     return sid, {name: arr[...] for name, arr in g.arrays()}, dict(g.attrs)

@@ -429,7 +429,6 @@ def read_block(
         ``start:stop`` outside ``0:info.n_traces``.
     """
     raw = _open_traces(info, start, stop)
-    n = raw.size // info.trace_bytes
     hasher = _Digest(raw) if digest else None
     threaded = hasher is not None and raw.size >= _THREAD_BYTES
     if threaded:

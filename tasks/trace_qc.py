@@ -281,3 +281,12 @@ def raise_on_flags(mask: np.ndarray, *, error_bits: int, trace_index: np.ndarray
         f"{where.size} trace(s) carry QC flags whose policy is 'error' ({counts}), first at "
         f"trace {positions[:5].tolist()}; fix the data, or set the policy to 'exclude' or 'keep'"
     )
+
+
+def usable_traces(flags: np.ndarray, source_index: np.ndarray, receiver_index: np.ndarray, *,
+                  exclude_bits: int) -> np.ndarray:
+    """bool [n]: traces the estimation uses and the correction changes: no
+    flag among ``exclude_bits`` (the policies set to exclude) and both a
+    source and a receiver station (index >= 0)."""
+    return (((np.asarray(flags, np.uint16) & np.uint16(exclude_bits)) == 0)
+            & (np.asarray(source_index) >= 0) & (np.asarray(receiver_index) >= 0))

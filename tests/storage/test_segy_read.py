@@ -7,7 +7,6 @@ positions of SEG-Y rev 1 (2002) and rev 2.0 (2017), or written by segyio
 
 from __future__ import annotations
 
-import hashlib
 import shutil
 import struct
 import zlib

@@ -199,3 +199,13 @@ def test_qc_config_defaults_ranges_and_station_refs():
             QcConfig(**bad)
     for field in QcConfig.model_fields.values():
         assert field.description and field.json_schema_extra["unit"]
+
+
+def test_usable_traces_needs_both_stations_and_no_excluded_flag():
+    from descatter.tasks.trace_qc import usable_traces
+
+    flags = np.array([0, FLAG_BITS["dead"], FLAG_BITS["clipped"], 0, 0], np.uint16)
+    src = np.array([0, 1, 2, -1, 4])
+    rcv = np.array([0, 1, 2, 3, -1])
+    got = usable_traces(flags, src, rcv, exclude_bits=FLAG_BITS["dead"] | FLAG_BITS["excluded"])
+    assert got.tolist() == [True, False, True, False, False]
