@@ -46,6 +46,25 @@ def _station_grid(solution: dict, kind: str, rows: np.ndarray, *, lead_s: float,
     return grid
 
 
+def correct_traces(sol: dict, attrs: dict, settings: dict, traces: np.ndarray, si: np.ndarray, ri: np.ndarray,
+                   passthrough: np.ndarray) -> np.ndarray:
+    """The corrected samples of ``traces`` (rows of one chunk) from the
+    solution's station filters; ``passthrough`` rows come back untouched."""
+    n_fft = settings["n_fft"]
+    dt = attrs["dt_s"]
+    band_index = np.asarray(settings["band_index"], np.int64)
+    us, s_inv = np.unique(np.maximum(si, 0), return_inverse=True)
+    ur, r_inv = np.unique(np.maximum(ri, 0), return_inverse=True)
+    common = dict(lead_s=settings["lead_s"], dt_s=dt, n_fft=n_fft, band_index=band_index,
+                  taper_bins=settings["taper_bins"])
+    s_grid = _station_grid(sol, "source", us, **common)
+    r_grid = _station_grid(sol, "receiver", ur, **common)
+    weight = grid_band_weight(band_index=band_index, n_rfft=n_fft // 2 + 1, taper=settings["taper_bins"])
+    correction = trace_correction(s_grid, r_grid, s_inv.reshape(-1), r_inv.reshape(-1), mode=settings["mode"],
+                                  prewhitening=settings["prewhitening"], band_weight=weight)
+    return apply_correction(traces, correction, n_fft=n_fft, passthrough=passthrough)
+
+
 def apply_chunk(store_path: str, swath: str, chunk: int, start: int, stop: int, solution_id: str,
                 settings: dict, fingerprint: str) -> dict:
     """One chunk: corrected traces written, then the flag. Idempotent."""
@@ -62,19 +81,7 @@ def apply_chunk(store_path: str, swath: str, chunk: int, start: int, stop: int, 
     flags = store.array(swath, "qc_flags")[start:stop]
     passthrough = ~usable_traces(flags, si, ri, exclude_bits=settings["exclude_bits"])
     passthrough |= sol["source_identity"][np.maximum(si, 0)] & sol["receiver_identity"][np.maximum(ri, 0)]
-    n_fft = settings["n_fft"]
-    dt = attrs["dt_s"]
-    band_index = np.asarray(settings["band_index"], np.int64)
-    us, s_inv = np.unique(np.maximum(si, 0), return_inverse=True)
-    ur, r_inv = np.unique(np.maximum(ri, 0), return_inverse=True)
-    common = dict(lead_s=settings["lead_s"], dt_s=dt, n_fft=n_fft, band_index=band_index,
-                  taper_bins=settings["taper_bins"])
-    s_grid = _station_grid(sol, "source", us, **common)
-    r_grid = _station_grid(sol, "receiver", ur, **common)
-    weight = grid_band_weight(band_index=band_index, n_rfft=n_fft // 2 + 1, taper=settings["taper_bins"])
-    correction = trace_correction(s_grid, r_grid, s_inv.reshape(-1), r_inv.reshape(-1), mode=settings["mode"],
-                                  prewhitening=settings["prewhitening"], band_weight=weight)
-    corrected = apply_correction(traces, correction, n_fft=n_fft, passthrough=passthrough)
+    corrected = correct_traces(sol, attrs, settings, traces, si, ri, passthrough)
     write_corrected_chunk(store_path, swath, start, corrected)
     summary = {"seconds": time.perf_counter() - t0, "passed": int(passthrough.sum())}
     ckpt.mark_done(chunk, summary)
