@@ -20,13 +20,18 @@ import numpy as np
 
 from descatter.flows.writer import store_writer
 from descatter.storage.checkpoints import Checkpoints
-from descatter.storage.estimation import corrected_settings, create_corrected, read_solution, write_corrected_chunk
+from descatter.storage.estimation import (
+    corrected_settings, corrected_solution_index, create_corrected, mark_corrected_solution, read_corrected_chunk,
+    read_solution,
+    write_corrected_chunk,
+)
 from descatter.storage.faults import fault_point
 from descatter.storage.store import SurveyStore
 from descatter.tasks.config import SurveyConfig
 from descatter.tasks.correction import (
     apply_correction, band_to_full_grid, correction_n_fft, filter_spectra, grid_band_weight, trace_correction,
 )
+from descatter.tasks.station_filters import filter_change
 from descatter.tasks.trace_qc import usable_traces
 
 log = logging.getLogger(__name__)
@@ -65,27 +70,92 @@ def correct_traces(sol: dict, attrs: dict, settings: dict, traces: np.ndarray, s
     return apply_correction(traces, correction, n_fft=n_fft, passthrough=passthrough)
 
 
-def apply_chunk(store_path: str, swath: str, chunk: int, start: int, stop: int, solution_id: str,
-                settings: dict, fingerprint: str) -> dict:
-    """One chunk: corrected traces written, then the flag. Idempotent."""
+def _rows_to_redo(applied: np.ndarray, si: np.ndarray, ri: np.ndarray, index: int, changed: dict) -> np.ndarray:
+    """Rows corrected by an earlier solution whose source or receiver filter
+    has since changed beyond the tolerance (``changed``: solution index ->
+    (source mask, receiver mask)); rows of unknown solutions are redone."""
+    redo = np.zeros(len(applied), bool)
+    for u in np.unique(applied):
+        if u == index:
+            continue
+        rows = applied == u
+        if int(u) not in changed:
+            redo |= rows
+            continue
+        src, rcv = changed[int(u)]
+        s, r = np.maximum(si[rows], 0), np.maximum(ri[rows], 0)
+        redo[rows] = src[s] | rcv[r]
+    return redo
+
+
+def apply_chunk(store_path: str, swath: str, chunk: int, start: int, stop: int, solution_id: str, index: int,
+                settings: dict, fingerprint: str, changed: dict) -> dict:
+    """One chunk: corrected traces written, then the flag. Idempotent.
+
+    A chunk first corrected by an earlier solution (same settings) is
+    re-corrected only in its rows whose stations' filters changed
+    (``changed``, from :func:`changed_stations`); the other rows keep their
+    samples and the record of the solution that corrected them.
+    """
     ckpt = Checkpoints(store_path, STAGE, swath, fingerprint)
-    if ckpt.is_done(chunk):
-        return {"chunk": chunk, "traces": stop - start, "resumed": True, "seconds": 0.0, "passed": 0}
+    done = ckpt.summary(chunk)
+    if done is not None and done.get("solution") == solution_id:
+        return {"swath": swath, "chunk": chunk, "traces": stop - start, "resumed": True, "seconds": 0.0,
+                "passed": 0, "recomputed": 0}
     t0 = time.perf_counter()
     store = SurveyStore.open(store_path)
     # only what this chunk needs: its own rows and the filters, not the whole solution
     _, sol, attrs = read_solution(store, solution_id, names=SOLUTION_ARRAYS)
-    traces = store.array(swath, "traces")[start:stop]
     si = store.array(swath, "geometry/source_index")[start:stop]
     ri = store.array(swath, "geometry/receiver_index")[start:stop]
     flags = store.array(swath, "qc_flags")[start:stop]
-    passthrough = ~usable_traces(flags, si, ri, exclude_bits=settings["exclude_bits"])
-    passthrough |= sol["source_identity"][np.maximum(si, 0)] & sol["receiver_identity"][np.maximum(ri, 0)]
-    corrected = correct_traces(sol, attrs, settings, traces, si, ri, passthrough)
-    write_corrected_chunk(store_path, swath, start, corrected)
-    summary = {"seconds": time.perf_counter() - t0, "passed": int(passthrough.sum())}
+    if done is None:
+        corrected = np.zeros((stop - start, store.n_samples), np.float32)
+        applied = np.full(stop - start, -1, np.int32)
+        redo = np.ones(stop - start, bool)
+    else:
+        corrected, applied = read_corrected_chunk(store_path, swath, start, stop)
+        redo = _rows_to_redo(applied, si, ri, index, changed)
+    if redo.any():
+        traces = store.array(swath, "traces")[start:stop][redo]
+        s, r = si[redo], ri[redo]
+        passthrough = ~usable_traces(flags[redo], s, r, exclude_bits=settings["exclude_bits"])
+        passthrough |= sol["source_identity"][np.maximum(s, 0)] & sol["receiver_identity"][np.maximum(r, 0)]
+        corrected[redo] = correct_traces(sol, attrs, settings, traces, s, r, passthrough)
+        applied[redo] = index
+        write_corrected_chunk(store_path, swath, start, corrected, applied)
+        passed = int(passthrough.sum())
+    else:
+        passed = 0
+    summary = {"solution": solution_id, "seconds": time.perf_counter() - t0, "passed": passed,
+               "recomputed": int(redo.sum())}
     ckpt.mark_done(chunk, summary)
-    return {"chunk": chunk, "traces": stop - start, "resumed": False, **summary}
+    return {"swath": swath, "chunk": chunk, "traces": stop - start, "resumed": False, **summary}
+
+
+def changed_stations(store: SurveyStore, solutions: list[str], current: str, new: dict, *,
+                     tolerance: float) -> dict[int, tuple[np.ndarray, np.ndarray]]:
+    """For each earlier solution in ``solutions`` (by index): which source and
+    receiver stations' filters differ from the ``new`` solution's by more than
+    ``tolerance`` (relative RMS; identity status changing counts as changed).
+    Solutions no longer in the store are left out (their rows are redone)."""
+    from descatter.storage.estimation import list_solutions
+
+    present = set(list_solutions(store))
+    out = {}
+    for u, sid in enumerate(solutions):
+        if sid == current or sid not in present:
+            continue
+        _, old, _ = read_solution(store, sid, names=SOLUTION_ARRAYS)
+        masks = []
+        for kind in ("source", "receiver"):
+            change = filter_change(old[f"{kind}_filter"], new[f"{kind}_filter"])
+            flip = np.ones(len(change), bool)
+            n_old = len(old[f"{kind}_identity"])
+            flip[:n_old] = old[f"{kind}_identity"] != new[f"{kind}_identity"][:n_old]
+            masks.append((change > tolerance) | flip)
+        out[u] = (masks[0], masks[1])
+    return out
 
 
 def correction_settings(store: SurveyStore, solution_id: str, attrs: dict, sol: dict, config: SurveyConfig) -> dict:
@@ -108,41 +178,59 @@ def correction_settings(store: SurveyStore, solution_id: str, attrs: dict, sol: 
 
 def apply_solution(store_path: str | Path, config: SurveyConfig, *, client, solution: str | None = None,
                    progress=None) -> dict:
-    """Correct every committed swath with a solution (default: the current one)."""
+    """Correct every committed swath with a solution (default: the current one).
+
+    Swaths corrected before with the same settings are re-corrected only
+    where station filters changed by more than ``correction.reapply_tolerance``
+    since the solution that corrected each trace; new swaths and changed
+    settings are corrected in full.
+    """
     from distributed import as_completed
 
     t0 = time.perf_counter()
     with store_writer(store_path, "apply") as (store, runlog):
         sid, sol, attrs = read_solution(store, solution)
         settings = correction_settings(store, sid, attrs, sol, config)
+        tolerance = config.correction.reapply_tolerance
         records = store.manifest()
         futures = []
+        # the solution is not part of the fingerprint: a new one re-corrects only what it changes
+        fixed = {k: v for k, v in settings.items() if k != "solution"}
         for rec in records:
-            fp = hashlib.blake2b(json.dumps({"v": STAGE_VERSION, "swath": rec.fingerprint, **settings},
+            fp = hashlib.blake2b(json.dumps({"v": STAGE_VERSION, "swath": rec.fingerprint, **fixed},
                                             sort_keys=True).encode(), digest_size=16).hexdigest()
             if (corrected_settings(store, rec.name) or {}).get("fingerprint") != fp:
-                create_corrected(store, rec.name, settings={k: v for k, v in settings.items() if k != "band_index"}
+                create_corrected(store, rec.name, settings={k: v for k, v in fixed.items() if k != "band_index"}
                                  | {"fingerprint": fp})
                 Checkpoints(store.path, STAGE, rec.name, fp).clear()
+            index, used = corrected_solution_index(store, rec.name, sid)
+            mark_corrected_solution(store, rec.name, None)
+            changed = changed_stations(store, used, sid, sol, tolerance=tolerance)
+            changed_f = client.scatter(changed) if changed else {}
             for chunk, (a, b) in enumerate(rec.chunk_bounds()):
-                futures.append(client.submit(apply_chunk, str(store.path), rec.name, chunk, a, b, sid, settings, fp,
-                                             key=f"apply-{rec.name}-{chunk}-{fp[:8]}", pure=False))
+                futures.append(client.submit(apply_chunk, str(store.path), rec.name, chunk, a, b, sid, index,
+                                             settings, fp, changed_f,
+                                             key=f"apply-{rec.name}-{chunk}-{fp[:8]}-{sid}", pure=False))
         runlog.write(STAGE, "start", solution=sid, chunks=len(futures), mode=settings["mode"],
-                     prewhitening=settings["prewhitening"])
+                     prewhitening=settings["prewhitening"], reapply_tolerance=tolerance)
         total = sum(r.n_traces for r in records)
-        done = resumed = passed = 0
+        done = resumed = passed = recomputed = 0
         for fut in as_completed(futures):
             s = fut.result()
             done += s["traces"]
             resumed += s["resumed"]
             passed += s["passed"]
-            runlog.write(STAGE, "batch", chunk=s["chunk"], traces=s["traces"], seconds=round(s["seconds"], 4),
-                         resumed=s["resumed"])
+            recomputed += s["recomputed"]
+            runlog.write(STAGE, "batch", swath=s["swath"], chunk=s["chunk"], traces=s["traces"], seconds=round(s["seconds"], 4),
+                         resumed=s["resumed"], recomputed=s["recomputed"])
             if progress:
                 progress("apply", done, total)
             if not s["resumed"]:
                 fault_point(STAGE)
+        for rec in records:
+            mark_corrected_solution(store, rec.name, sid)
         seconds = time.perf_counter() - t0
-        runlog.write(STAGE, "end", solution=sid, traces=total, passed_through=passed, seconds=round(seconds, 3))
-        return {"solution": sid, "traces": total, "passed_through": passed, "resumed_chunks": resumed,
-                "seconds": seconds, "settings": settings}
+        runlog.write(STAGE, "end", solution=sid, traces=total, recomputed=recomputed, passed_through=passed,
+                     seconds=round(seconds, 3))
+        return {"solution": sid, "traces": total, "recomputed": recomputed, "passed_through": passed,
+                "resumed_chunks": resumed, "seconds": seconds, "settings": settings}

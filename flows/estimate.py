@@ -71,7 +71,7 @@ def spectra_chunk(store_path: str, swath: str, chunk: int, start: int, stop: int
     """One chunk of traces -> one chunk of windowed spectra, then its flag."""
     ckpt = Checkpoints(store_path, "spectra", swath, fingerprint)
     if ckpt.is_done(chunk):
-        return {"chunk": chunk, "resumed": True, "traces": stop - start, "seconds": 0.0}
+        return {"swath": swath, "chunk": chunk, "resumed": True, "traces": stop - start, "seconds": 0.0}
     t0 = time.perf_counter()
     store = SurveyStore.open(store_path)
     traces = store.array(swath, "traces")[start:stop]
@@ -86,7 +86,8 @@ def spectra_chunk(store_path: str, swath: str, chunk: int, start: int, stop: int
     )
     write_spectra_chunk(store_path, swath, start, spectra)
     ckpt.mark_done(chunk, {"seconds": time.perf_counter() - t0})
-    return {"chunk": chunk, "resumed": False, "traces": stop - start, "seconds": time.perf_counter() - t0}
+    return {"swath": swath, "chunk": chunk, "resumed": False, "traces": stop - start,
+            "seconds": time.perf_counter() - t0}
 
 
 # -- statistics tasks (run on workers) ------------------------------------
@@ -245,7 +246,7 @@ def run_spectra(store: SurveyStore, records: list[SwathRecord], params: dict, n_
         done += s["traces"]
         report.spectra_chunks += 1
         report.spectra_resumed += s["resumed"]
-        runlog.write("spectra", "batch", chunk=s["chunk"], traces=s["traces"], seconds=round(s["seconds"], 4),
+        runlog.write("spectra", "batch", swath=s["swath"], chunk=s["chunk"], traces=s["traces"], seconds=round(s["seconds"], 4),
                      resumed=s["resumed"])
         if progress:
             progress("spectra", done, total)
@@ -255,9 +256,21 @@ def run_spectra(store: SurveyStore, records: list[SwathRecord], params: dict, n_
     return fps
 
 
+def _present(geoms: dict, field: str, n: int) -> np.ndarray:
+    """bool [n]: stations that some committed swath's traces use."""
+    mask = np.zeros(n, bool)
+    for g in geoms.values():
+        idx = g[field]
+        mask[idx[(idx >= 0) & (idx < n)]] = True
+    return mask
+
+
 def allowed_pairs(x: np.ndarray, y: np.ndarray, *, radius_m: float, bridge: bool, kind: str,
-                  report: StatsReport) -> np.ndarray:
-    """Neighbour pairs within the radius, plus bridges between components."""
+                  report: StatsReport, present: np.ndarray | None = None) -> np.ndarray:
+    """Neighbour pairs within the radius, plus bridges between components,
+    among the ``present`` stations (default: all); indices into ``x``."""
+    rows = np.arange(len(x)) if present is None else np.flatnonzero(present)
+    x, y = x[rows], y[rows]
     pairs = neighbour_pairs(x, y, radius_m=radius_m)
     n_comp, _ = graph_components(len(x), pairs)
     entry = {"stations": len(x), "pairs": len(pairs), "components_before": n_comp, "bridged": 0}
@@ -271,7 +284,7 @@ def allowed_pairs(x: np.ndarray, y: np.ndarray, *, radius_m: float, bridge: bool
     else:
         entry["components_after"] = n_comp
     report.components[kind] = entry
-    return pairs
+    return rows[pairs].reshape(-1, 2) if len(pairs) else pairs.reshape(0, 2)
 
 
 def _subset(pairs: np.ndarray, members: np.ndarray) -> np.ndarray:
@@ -296,14 +309,19 @@ def run_statistics(store: SurveyStore, config: SurveyConfig, *, client, runlog: 
                               report=report, progress=progress)
     est = config.estimate
     src, rcv = read_stations(store, "sources"), read_stations(store, "receivers")
-    rpairs = allowed_pairs(rcv["x"], rcv["y"], radius_m=est.receiver_radius_m,
-                           bridge=est.bridge_components, kind="receivers", report=report)
-    spairs = allowed_pairs(src["x"], src["y"], radius_m=est.source_radius_m,
-                           bridge=est.bridge_components, kind="sources", report=report)
     exclude_bits = config.qc.exclude_bits()
     geoms = {r.name: read_swath_geometry(store, r.name, ["shot", "source_index", "receiver_index", "offset"])
              for r in records}
+    # pairs among the stations of committed swaths only: a removed swath's stations stay in the
+    # append-only tables, and must not connect (or keep from bridging) what its traces no longer do
+    present = {kind: _present(geoms, f"{kind}_index", len(table["x"]))
+               for kind, table in (("source", src), ("receiver", rcv))}
+    rpairs = allowed_pairs(rcv["x"], rcv["y"], radius_m=est.receiver_radius_m,
+                           bridge=est.bridge_components, kind="receivers", report=report, present=present["receiver"])
+    spairs = allowed_pairs(src["x"], src["y"], radius_m=est.source_radius_m,
+                           bridge=est.bridge_components, kind="sources", report=report, present=present["source"])
     jobs = []  # (key, group, fingerprint, future of the reduced statistic)
+    done_before = []  # (key, group) finished by an earlier run: the run log names them
     for i, rec in enumerate(records):
         g = geoms[rec.name]
         srcs = np.unique(g["source_index"][g["source_index"] >= 0])
@@ -321,16 +339,22 @@ def run_statistics(store: SurveyStore, config: SurveyConfig, *, client, runlog: 
             parts = [client.submit(receiver_pairs_task, str(store.path), rec.name, shots, rp_f, exclude_bits,
                                    pure=False) for shots in _groups(g["shot"], est.shot_group_traces)]
             wanted.append(("receiver_pairs", tree_sum(client, parts)))
+        else:
+            done_before.append((rec.name, "receiver_pairs"))
         if not ckpt.is_done(1):
             sp_f = client.scatter(sp)
             parts = [client.submit(source_pairs_task, str(store.path), rec.name, recv, sp_f, exclude_bits,
                                    pure=False) for recv in _groups(g["receiver_index"][g["receiver_index"] >= 0],
                                                                    est.shot_group_traces)]
             wanted.append(("source_pairs", tree_sum(client, parts)))
+        else:
+            done_before.append((rec.name, "source_pairs"))
         if not ckpt.is_done(2):
             parts = [client.submit(log_power_task, str(store.path), rec.name, a, b, sizes, est.offset_bin_m,
                                    exclude_bits, pure=False) for a, b in rec.chunk_bounds()]
             wanted.append(("log_power", tree_sum(client, parts)))
+        else:
+            done_before.append((rec.name, "log_power"))
         for group, total in wanted:
             jobs.append((rec.name, group, client.submit(write_stats_task, str(store.path), rec.name, group,
                                                         total, fp, pure=False)))
@@ -350,6 +374,7 @@ def run_statistics(store: SurveyStore, config: SurveyConfig, *, client, runlog: 
             report.fingerprints[key] = fpx
             if Checkpoints(store.path, "stats", key, fpx).is_done(1):
                 report.stats_skipped.append(key)
+                done_before.append((key, "source_pairs"))
                 continue
             bf = client.scatter(between)
             parts = [client.submit(source_pairs_between_task, str(store.path), prev.name, rec.name, recv, bf,
@@ -357,7 +382,9 @@ def run_statistics(store: SurveyStore, config: SurveyConfig, *, client, runlog: 
             jobs.append((key, "source_pairs", client.submit(write_stats_task, str(store.path), key, "source_pairs",
                                                             tree_sum(client, parts), fpx, pure=False)))
             report.stats_computed.append(key)
-    runlog.write("stats", "start", jobs=len(jobs))
+    runlog.write("stats", "start", jobs=len(jobs), resumed=len(done_before))
+    for key, group in done_before:
+        runlog.write("stats", "skip", key=key, group=group, reason="done in an earlier run")
     for n, (key, group, fut) in enumerate(jobs, 1):
         summary = fut.result()
         runlog.write("stats", "batch", key=key, group=group, **summary)

@@ -16,7 +16,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from descatter.flows.estimate import lps_from_arrays
-from descatter.storage.estimation import has_stats, read_stats
+from descatter.storage.estimation import has_stats, read_solution, read_stats
 from descatter.storage.stations import read_stations
 from descatter.storage.store import SurveyStore
 from descatter.tasks import station_filters as sf
@@ -68,16 +68,39 @@ def _phase_weight(p: PairSums) -> np.ndarray:
     return p.coherence() * p.count[:, None]
 
 
-def _phases(client, pairs: PairSums, n_stations: int, method: str):
+def _phases(client, pairs: PairSums, n_stations: int, method: str, initial: np.ndarray | None = None):
     weight = _phase_weight(pairs)
     n_freq = pairs.n_freq
     blocks = [slice(a, min(a + FREQ_BLOCK, n_freq)) for a in range(0, n_freq, FREQ_BLOCK)]
     if client is None or len(blocks) == 1:
-        return phase_sync(pairs.pairs, pairs.cross, weight, n_stations=n_stations, method=method)
+        return phase_sync(pairs.pairs, pairs.cross, weight, n_stations=n_stations, method=method, initial=initial)
     p_f, c_f, w_f = client.scatter([pairs.pairs, pairs.cross, weight])
+    i_f = None if initial is None else client.scatter(initial)
     futures = [client.submit(phase_sync, p_f, c_f, w_f, n_stations=n_stations, method=method, columns=b,
-                             pure=False) for b in blocks]
+                             initial=i_f, pure=False) for b in blocks]
     return concat_phase_solutions(client.gather(futures))
+
+
+def warm_start(store: SurveyStore, freqs: np.ndarray, sizes: dict[str, int]) -> dict[str, np.ndarray]:
+    """Unit phases of the current solution, per station kind, padded with
+    zeros for stations it did not have: the starting point of the iterative
+    phase solve. Empty when there is no current solution on these frequencies."""
+    from descatter.storage.estimation import list_solutions
+
+    current = store.attrs.get("current_solution")
+    if not current or current not in list_solutions(store):
+        return {}
+    _, sol, _ = read_solution(store, current, names=("freq_hz", "source_response", "receiver_response"))
+    if sol["freq_hz"].shape != freqs.shape or not np.allclose(sol["freq_hz"], freqs):
+        return {}
+    out = {}
+    for kind, n in sizes.items():
+        r = sol[f"{kind}_response"].astype(np.complex128)[:n]
+        z = np.zeros((n, len(freqs)), np.complex128)
+        mag = np.abs(r)
+        z[: len(r)] = np.where(mag > 0, r / np.where(mag > 0, mag, 1.0), 0.0)
+        out[kind] = z
+    return out
 
 
 def station_attributes(kind: str, amp_term: np.ndarray, phase, pairs: PairSums, n: int, freqs: np.ndarray,
@@ -145,8 +168,9 @@ def solve_stations(store: SurveyStore, config: SurveyConfig, freqs: np.ndarray, 
     rcv_amp = pair_amplitude_solve(rp.pairs, rp.cross, rp.count, prior=rcv_amp)
     src_amp = pair_amplitude_solve(sp.pairs, sp.cross, sp.count, prior=src_amp)
     method = config.estimate.phase_method
-    rph = _phases(client, totals.receiver_pairs, n_rcv, method)
-    sph = _phases(client, totals.source_pairs, n_src, method)
+    warm = warm_start(store, freqs, {"receiver": n_rcv, "source": n_src}) if method == "eigen" else {}
+    rph = _phases(client, totals.receiver_pairs, n_rcv, method, warm.get("receiver"))
+    sph = _phases(client, totals.source_pairs, n_src, method, warm.get("source"))
     dt = store.sample_interval_s
     arrays = {"freq_hz": freqs, "amplitude_residual_rms": amp.residual_rms,
               "receiver_phase_residual": rph.residual, "source_phase_residual": sph.residual}
@@ -154,6 +178,7 @@ def solve_stations(store: SurveyStore, config: SurveyConfig, freqs: np.ndarray, 
     arrays |= station_attributes("receiver", rcv_amp, rph, totals.receiver_pairs, n_rcv, freqs, config, dt, n_fft)
     summary = {
         "statistics": totals.keys,
+        "warm_start": bool(warm),
         "receiver_components": int(rph.n_components), "source_components": int(sph.n_components),
         "receiver_identity": int(arrays["receiver_identity"].sum()),
         "source_identity": int(arrays["source_identity"].sum()),

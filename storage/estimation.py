@@ -69,13 +69,17 @@ def read_spectra(store_path: str | Path, swath: str, rows: np.ndarray | slice) -
 
 def create_corrected(store: SurveyStore, swath: str, *, settings: dict[str, Any]) -> None:
     """(Re)create a swath's corrected array like its traces, with the
-    effective correction settings in its attributes (written once, here)."""
+    effective correction settings in its attributes, and beside it
+    ``corrected_solution`` (int32 per trace: which of the attribute list
+    ``solutions`` corrected it, -1 before any)."""
     traces = store.array(swath, "traces")
     group = zarr.open_group(str(store.path), mode="r+")[f"{SWATHS}/{swath}"]
     arr = group.create_array("corrected", shape=traces.shape, chunks=traces.chunks, dtype="float32",
                              compressors=traces.compressors, fill_value=0.0, overwrite=True,
                              dimension_names=["trace", "sample"])
-    arr.attrs.update(settings)
+    group.create_array("corrected_solution", shape=(traces.shape[0],), chunks=(traces.chunks[0],),
+                       dtype="int32", fill_value=-1, overwrite=True, dimension_names=["trace"])
+    arr.attrs.update({**settings, "solutions": []})
 
 
 def corrected_settings(store: SurveyStore, swath: str) -> dict[str, Any] | None:
@@ -84,11 +88,38 @@ def corrected_settings(store: SurveyStore, swath: str) -> dict[str, Any] | None:
     return dict(store.array(swath, "corrected").attrs)
 
 
-def write_corrected_chunk(store_path: str | Path, swath: str, start: int, samples: np.ndarray) -> None:
+def corrected_solution_index(store: SurveyStore, swath: str, solution_id: str) -> tuple[int, list[str]]:
+    """Index of ``solution_id`` in the swath's list of correcting solutions,
+    appended if new (by the single writer); returns it and the whole list."""
+    arr = _corrected_array(store, swath)
+    solutions = list(arr.attrs.get("solutions", []))
+    if solution_id not in solutions:
+        solutions.append(solution_id)
+        arr.attrs.update({"solutions": solutions})
+    return solutions.index(solution_id), solutions
+
+
+def mark_corrected_solution(store: SurveyStore, swath: str, solution_id: str | None) -> None:
+    """Record the solution the swath's corrected traces are up to date with
+    (``None`` while a correction is under way). Single writer only."""
+    _corrected_array(store, swath).attrs.update({"solution": solution_id})
+
+
+def _corrected_array(store: SurveyStore, swath: str):
+    return zarr.open_array(str(store.path), path=f"{SWATHS}/{swath}/corrected", mode="r+")
+
+
+def write_corrected_chunk(store_path: str | Path, swath: str, start: int, samples: np.ndarray,
+                          applied: np.ndarray) -> None:
+    """A chunk of corrected samples, then which solution corrected each trace."""
     write_chunk(store_path, swath, "corrected", start, samples)
+    write_chunk(store_path, swath, "corrected_solution", start, np.asarray(applied, np.int32))
 
 
-# -- statistics ----------------------------------------------------------
+def read_corrected_chunk(store_path: str | Path, swath: str, start: int, stop: int) -> tuple[np.ndarray, np.ndarray]:
+    g = zarr.open_group(str(store_path), path=f"{SWATHS}/{swath}", mode="r")
+    return g["corrected"][start:stop], g["corrected_solution"][start:stop]
+
 
 def write_stats(store_path: str | Path, key: str, group: str, arrays: dict[str, np.ndarray]) -> None:
     """Write one statistics group whole (``stats/<key>/<group>/*``),

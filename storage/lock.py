@@ -6,6 +6,10 @@ heartbeat refreshed by a background thread. A second writer gets a
 :class:`LockHeldError` naming the holder; a lock whose heartbeat is older
 than the timeout, or whose holder process is gone on this host, is called
 stale and can be cleared with ``descatter lock STORE --clear``.
+
+The lock is reentrant within one process: a stage that takes it while an
+enclosing operation of the same process holds it (``swath replace``, a whole
+run) shares that hold, so no other writer can slip in between the stages.
 """
 
 from __future__ import annotations
@@ -26,6 +30,10 @@ log = logging.getLogger(__name__)
 LOCK_NAME = "lock.json"
 HEARTBEAT_S = 10.0
 STALE_AFTER_S = 120.0
+
+# lock file -> depth of the holds this process has on it
+_HELD: dict[Path, int] = {}
+_HELD_GUARD = threading.Lock()
 
 
 def _now() -> float:
@@ -111,8 +119,21 @@ class StoreLock:
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
         self._record: dict[str, Any] = {}
+        self._nested = False
 
     def acquire(self) -> "StoreLock":
+        key = self.path.resolve()
+        with _HELD_GUARD:
+            if _HELD.get(key, 0) > 0:
+                _HELD[key] += 1
+                self._nested = True
+                return self
+        self._acquire_file()
+        with _HELD_GUARD:
+            _HELD[key] = 1
+        return self
+
+    def _acquire_file(self) -> None:
         self.path.parent.mkdir(parents=True, exist_ok=True)
         t = _now()
         self._record = {
@@ -128,7 +149,7 @@ class StoreLock:
                 # lock protects nothing. Take it over, and say so.
                 log.warning("taking over the lock of %s from dead %s", self.path.parent, describe_holder(holder))
                 self.path.unlink(missing_ok=True)
-                return self.acquire()
+                return self._acquire_file()
             why = lock_is_stale(holder)
             hint = (
                 f" It looks stale ({why}): check, then run 'descatter lock {self.path.parent} --clear'."
@@ -142,7 +163,6 @@ class StoreLock:
             json.dump(self._record, fh)
         self._thread = threading.Thread(target=self._beat, name="descatter-lock-heartbeat", daemon=True)
         self._thread.start()
-        return self
 
     def _create(self) -> int:
         return os.open(self.path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o644)
@@ -159,6 +179,15 @@ class StoreLock:
                 return
 
     def release(self) -> None:
+        key = self.path.resolve()
+        with _HELD_GUARD:
+            depth = _HELD.get(key, 0) - 1
+            if depth > 0:
+                _HELD[key] = depth
+                return
+            _HELD.pop(key, None)
+        if self._nested:  # the outer hold went first: nothing of ours to remove
+            return
         self._stop.set()
         if self._thread is not None:
             self._thread.join(timeout=5)

@@ -242,6 +242,15 @@ class SurveyStore:
         self._write_manifest(records, stations or self.station_counts())
         log.info("committed swath %s (%d traces)", record.name, record.n_traces)
 
+    def drop_from_manifest(self, name: str) -> None:
+        """Unpublish a committed swath: rewrite the manifest atomically
+        without it (the first step of removing it; see storage.swath_removal)."""
+        records = self.manifest()
+        if not any(r.name == name for r in records):
+            raise SwathConflictError(f"{self.path}: no committed swath {name!r}")
+        self._write_manifest([r for r in records if r.name != name], self.station_counts())
+        log.info("removed swath %s from the manifest", name)
+
     def set_station_counts(self, stations: dict[str, int]) -> None:
         """Commit new station-table lengths (after a geometry rebuild)."""
         self._write_manifest(self.manifest(), stations)

@@ -195,6 +195,12 @@ class CorrectionConfig(_Section):
         5.0, ge=0.0, description="transition from the correction in the band to identity outside it",
         json_schema_extra=_unit("Hz"),
     )
+    reapply_tolerance: float = Field(
+        0.02, ge=0.0,
+        description="a new solution re-corrects only traces whose source or receiver filter changed by more than "
+                    "this relative RMS (|f_new - f_applied| / |f_applied|); 0 re-corrects every changed filter",
+        json_schema_extra=_unit("fraction"),
+    )
 
 
 class SurveyConfig(_Section):

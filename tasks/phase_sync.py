@@ -221,8 +221,11 @@ def _hermitian(st: _Structure, pairs: np.ndarray, hw: np.ndarray, n: int) -> sp.
     return h.tocsr()
 
 
-def _eigen(st: _Structure, pairs, hw, w, n, tol, maxiter, column) -> np.ndarray:
-    """Leading eigenvector of H per component (unnormalised); Laplacian fallback."""
+def _eigen(st: _Structure, pairs, hw, w, n, tol, maxiter, column, start=None) -> np.ndarray:
+    """Leading eigenvector of H per component (unnormalised); Laplacian fallback.
+
+    start: optional complex [n], ARPACK's starting vector (a warm start from
+    an earlier solution); zero or non-finite entries start from 1."""
     z = np.ones(n, np.complex128)
     if st.n_components == 0:
         return z
@@ -240,8 +243,12 @@ def _eigen(st: _Structure, pairs, hw, w, n, tol, maxiter, column) -> np.ndarray:
             z[idx] = np.linalg.eigh(block.toarray())[1][:, -1]
             continue
         try:
-            z[idx] = sla.eigsh(block, k=1, which="LA", v0=np.ones(hi - lo, np.complex128),
-                               tol=tol, maxiter=maxiter)[1][:, 0]
+            v0 = np.ones(hi - lo, np.complex128)
+            if start is not None:
+                s0 = start[idx]
+                ok = np.isfinite(s0) & (s0 != 0)
+                v0[ok] = s0[ok]
+            z[idx] = sla.eigsh(block, k=1, which="LA", v0=v0, tol=tol, maxiter=maxiter)[1][:, 0]
         except sla.ArpackNoConvergence:
             log.warning("phase_sync: ARPACK did not converge on a component of %d stations at column %d; "
                         "using the pinned Laplacian solution there", hi - lo, column)
@@ -304,6 +311,7 @@ def phase_sync(
     columns: slice | np.ndarray | None = None,
     eigen_tol: float = 1e-10,
     eigen_maxiter: int | None = None,
+    initial: np.ndarray | None = None,
 ) -> PhaseSolution:
     """Unit phases ``z_j(f)`` with ``z_j conj(z_k) ~ X_jk / |X_jk|`` (module notes).
 
@@ -312,6 +320,10 @@ def phase_sync(
     frequency), pairs with weight <= 0 are left out. ``columns`` (a slice or int array
     into the frequency axis) solves only those frequencies, for mapping blocks of
     frequencies over workers; components are taken over all columns so blocks agree.
+    ``initial`` (complex [n_stations, n_freq], all frequencies; rows past an
+    earlier solution's stations zero) warm-starts the ``"eigen"`` iterations
+    from an earlier solution; the ``"laplacian"`` solve is direct and exact,
+    so it needs none and ignores it.
     Returns a :class:`PhaseSolution` with ``z`` complex128 [n_stations, n_selected].
     """
     if method not in METHODS:
@@ -320,6 +332,11 @@ def phase_sync(
     if n < 0:
         raise ConfigError(f"n_stations = {n_stations}: expected a count >= 0")
     pairs, cross, weight = _check_inputs(pairs, cross, weight, n)
+    if initial is not None:
+        initial = np.asarray(initial, np.complex128)
+        if initial.shape != (n, cross.shape[1]):
+            raise ConfigError(f"initial has shape {initial.shape}: expected (n_stations, n_freq) = "
+                              f"({n}, {cross.shape[1]})")
     cols = np.arange(cross.shape[1])[slice(None) if columns is None else columns]
     cols = np.atleast_1d(cols).astype(np.int64)
     live_all = _usable(cross, weight)
@@ -343,7 +360,8 @@ def phase_sync(
         if method == "laplacian":
             zi = _laplacian(st, hw, w, n)
         else:
-            zi = _eigen(st, pairs, hw, w, n, eigen_tol, eigen_maxiter, int(col))
+            start = None if initial is None else initial[:, col]
+            zi = _eigen(st, pairs, hw, w, n, eigen_tol, eigen_maxiter, int(col), start)
         z[:, i] = _normalise_and_gauge(zi, st.labels, st.n_components, int(col))
     residual, station_residual = _residuals(pairs, cx, wx, live, z)
     return PhaseSolution(z=z, component=component, n_components=n_components, residual=residual,

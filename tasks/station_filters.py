@@ -443,3 +443,25 @@ def smooth_gauge(response: np.ndarray, *, freqs_hz: np.ndarray, component: np.nd
         if abs(s) > 0:
             r[rows] *= np.conj(s) / abs(s)
     return r
+
+
+def filter_change(old: np.ndarray, new: np.ndarray) -> np.ndarray:
+    """Relative RMS change of each station's time filter, ``|new - old| / |old|``.
+
+    old: float [n_old, n_taps]; new: float [n_new, n_taps] with
+    ``n_new >= n_old`` (station tables only grow). Returns float64 [n_new]:
+    ``inf`` for stations the old solution did not have, and for every
+    station when the filter lengths differ (the filters are not comparable).
+    An all-zero old filter changes by ``inf`` unless the new one is zero too.
+    """
+    old = np.asarray(old, np.float64)
+    new = np.asarray(new, np.float64)
+    out = np.full(len(new), np.inf)
+    if old.ndim != 2 or new.ndim != 2 or old.shape[1] != new.shape[1] or len(old) > len(new):
+        return out
+    n = len(old)
+    diff = np.linalg.norm(new[:n] - old, axis=1)
+    ref = np.linalg.norm(old, axis=1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out[:n] = np.where(ref > 0, diff / ref, np.where(diff > 0, np.inf, 0.0))
+    return out

@@ -204,3 +204,22 @@ def test_bad_config_names_the_key(tmp_path, text, expected):
 def test_missing_config_file(tmp_path):
     with pytest.raises(InputNotFoundError, match="config init"):
         load_config(tmp_path / "nope.toml")
+
+
+def test_lock_is_reentrant_in_one_process_and_held_until_the_outer_release(tmp_path):
+    ctx = mp.get_context("spawn")
+    with StoreLock(tmp_path, command="outer"):
+        with StoreLock(tmp_path, command="inner"):
+            assert read_lock(tmp_path)["command"] == "outer"
+        # the inner release leaves the outer hold in place: another process is still refused
+        assert read_lock(tmp_path)["command"] == "outer"
+        started, release = ctx.Event(), ctx.Event()
+        proc = ctx.Process(target=_hold_lock, args=(tmp_path, started, release))
+        proc.start()
+        try:
+            assert not started.wait(3)
+        finally:
+            release.set()
+            proc.join(30)
+        assert proc.exitcode != 0  # it raised LockHeldError
+    assert read_lock(tmp_path) is None

@@ -264,3 +264,22 @@ def test_input_errors():
         phase_sync(pairs, cross, np.ones(2), n_stations=3, method="power")
     empty = phase_sync(np.zeros((0, 2), np.int64), np.zeros((0, 3), np.complex128), np.zeros((0, 3)), n_stations=4)
     assert empty.isolated.all() and np.all(empty.z == 1) and empty.n_components == 0
+
+
+def test_eigen_warm_start_converges_to_the_cold_answer():
+    # ARPACK started from the answer of nearly the same problem (an earlier solution) reaches the
+    # same eigenvector as from the flat start
+    rng = np.random.default_rng(11)
+    side, n_freq = 12, 3
+    pairs = grid_pairs(side)
+    n = side * side
+    z = planted(rng, n, n_freq)
+    cross = cross_of(z, pairs, rng, noise_rad=0.3)
+    weight = np.ones((len(pairs), n_freq))
+    cold = phase_sync(pairs, cross, weight, n_stations=n, method="eigen")
+    earlier = phase_sync(pairs, cross * np.exp(0.05j * rng.standard_normal(cross.shape)), weight,
+                         n_stations=n, method="eigen")
+    warm = phase_sync(pairs, cross, weight, n_stations=n, method="eigen", initial=earlier.z)
+    np.testing.assert_allclose(warm.z, cold.z, atol=1e-6)
+    with pytest.raises(ConfigError, match="initial has shape"):
+        phase_sync(pairs, cross, weight, n_stations=n, method="eigen", initial=earlier.z[:-1])

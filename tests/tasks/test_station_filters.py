@@ -281,3 +281,15 @@ def test_smooth_gauge_removes_a_rough_common_phase_and_keeps_relative_filters():
     two = smooth_gauge(rough, freqs_hz=f, component=labels)
     assert np.array_equal(two[20:30], rough[20:30])
     assert np.max(scattering_fraction(two[labels >= 0], freqs_hz=f, weight=ones)) < 1e-3
+
+
+def test_filter_change_is_the_relative_rms_difference():
+    from descatter.tasks.station_filters import filter_change
+
+    old = np.array([[3.0, 4.0, 0.0], [1.0, 0.0, 0.0], [0.0, 0.0, 0.0]])
+    new = np.array([[3.0, 4.0, 0.5], [0.0, 1.0, 0.0], [0.0, 0.0, 0.0], [1.0, 0.0, 0.0]])
+    got = filter_change(old, new)
+    # |(0, 0, 0.5)| / |(3, 4, 0)| = 0.5 / 5; |(-1, 1, 0)| / 1 = sqrt(2); zero to zero: 0; a new station: inf
+    np.testing.assert_allclose(got[:3], [0.1, np.sqrt(2), 0.0])
+    assert got[3] == np.inf
+    assert np.all(filter_change(old, new[:, :2]) == np.inf)  # other lengths: not comparable
