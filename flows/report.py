@@ -7,6 +7,13 @@ builds the figures (:mod:`descatter.flows.report_figures`) and the page
 (:mod:`descatter.flows.report_page`); hands them to
 :mod:`descatter.storage.report_files`. Trace metrics read whole shots, in
 batches, at most ``max_traces`` traces spread evenly over the survey.
+
+On a synthetic survey (``descatter synth``) the truth file beside the swaths'
+SEG-Y files gives each corrected trace's clean truth (the same trace without
+station filters and noise): the report then states how closely the corrected
+traces match it (``truth_correlation`` of :func:`descatter.tasks.report_metrics.batch_quality`).
+That file is found by its name beside the files the manifest records; the
+path is joined here for want of a storage helper that names it.
 """
 
 from __future__ import annotations
@@ -20,6 +27,7 @@ import numpy as np
 from descatter.flows import report_figures as figs
 from descatter.tasks.trace_qc import usable_traces
 from descatter.flows.report_page import CAUTION, build_page
+from descatter.storage.arrays_file import read_arrays
 from descatter.storage.checkpoints import Checkpoints
 from descatter.storage.config_file import parse_config
 from descatter.storage.estimation import corrected_settings, read_solution
@@ -32,9 +40,10 @@ from descatter.tasks.geometry import station_layout
 from descatter.tasks.moveout import window_samples, window_taper
 from descatter.tasks.quality import spacing_adequacy
 from descatter.tasks.report_metrics import (
-    analysis_traces, batch_quality, cmp_bin_centres, cmp_bin_keys, even_shot_sample, extreme_station_pairs,
-    group_signal_to_noise, mean_row_peak, merge_semblance_sums, nyquist_spacing_curve, pair_crosscorrelation, row_repeatability,
-    semblance_from_sums, snr_gain_db, upper_quantile_mask,
+    analysis_traces, batch_quality, cmp_bin_centres, cmp_bin_keys, distribution_summary, even_shot_sample,
+    extreme_station_pairs, group_signal_to_noise, match_stations, mean_row_peak, merge_semblance_sums,
+    nyquist_spacing_curve, pair_crosscorrelation, row_repeatability, semblance_from_sums, snr_gain_db,
+    CLEAN_TRUTH_KEYS, truth_clean_traces, upper_quantile_mask,
 )
 
 log = logging.getLogger(__name__)
@@ -54,6 +63,10 @@ MAX_PAIR_SHOTS = 60      # rows of one pair panel
 BATCH_TRACES = 20_000    # traces held at once (whole shots)
 MIN_CMP_FOLD = 4         # bins with fewer traces give no S/N (semblance of 1 trace is 1)
 HIGH_ZONE_QUANTILE = 0.75
+TRUTH_FILE = "truth.npz"  # written by 'descatter synth' beside the swaths' SEG-Y files
+# synthetic coordinates are written at centimetre precision (flows.synth COORDINATE_SCALAR)
+TRUTH_MATCH_M = 0.05
+CORRELATION_EDGES = np.linspace(-1.0, 1.0, 41)  # histogram bins of the truth correlations
 COMMON_VELOCITIES_MPS = (100.0, 300.0)  # common practice, DESIGN section 5
 
 
@@ -169,10 +182,12 @@ def _cmp_binning(config: SurveyConfig, tables: dict, spacing: dict) -> dict:
 
 
 def _trace_metrics(store: SurveyStore, config: SurveyConfig, table: ShotTable, chosen: np.ndarray,
-                   an: Analysis, binning: dict) -> dict:
+                   an: Analysis, binning: dict, truth: dict | None = None) -> dict:
     """Per-shot semblance, per-CMP-bin sums and mean spectra, batch by batch
-    of whole shots."""
+    of whole shots; with ``truth`` (:func:`_truth_of`) also each trace's
+    correlation with its clean truth, before and after."""
     n = len(table.shot)
+    truth_parts = {"entry": [], "before": [], "after": []}
     semblance = {"before": np.full(n, np.nan), "after": np.full(n, np.nan)}
     n_used = np.zeros(n, np.int64)
     cmp_sums = {"before": (), "after": ()}
@@ -190,11 +205,19 @@ def _trace_metrics(store: SurveyStore, config: SurveyConfig, table: ShotTable, c
         for batch in np.split(entries, np.flatnonzero(np.diff((cum - 1) // BATCH_TRACES)) + 1):
             rows = np.flatnonzero(live & np.isin(g["shot"], table.shot[batch]))
             cmp_keys = cmp_bin_keys(g["cmp_x"][rows], g["cmp_y"][rows], **binning)
+            clean = None
+            if truth is not None:
+                clean = an.flat(truth_clean_traces(truth["arrays"], truth["source"][g["source_index"][rows]],
+                                                   truth["receiver"][g["receiver_index"][rows]],
+                                                   n_samples=an.n_samples), g["offset"][rows], delay[rows])
+                truth_parts["entry"].append(batch[np.searchsorted(table.shot[batch], g["shot"][rows])])
             for side, key in (("before", "traces"), ("after", "corrected")):
                 flat = an.flat(_read_rows(store, name, key, rows), g["offset"][rows], delay[rows], band=False)
                 q = batch_quality(flat, shots=g["shot"][rows], cmp_keys=cmp_keys, dt_s=an.dt_s, band_hz=an.band_hz,
                                   band_taper_hz=an.band_taper_hz, start=an.start, stop=an.stop,
-                                  window_weights=an.taper)
+                                  window_weights=an.taper, truth=clean)
+                if clean is not None:
+                    truth_parts[side].append(q["truth_correlation"])
                 if not np.array_equal(q["shot"], table.shot[batch]):
                     raise StoreFormatError(f"{store.path}: the geometry of swath {name!r} changed while the report "
                                            "read it (a geometry rebuild?); run the report again")
@@ -209,9 +232,14 @@ def _trace_metrics(store: SurveyStore, config: SurveyConfig, table: ShotTable, c
     for side in ("before", "after"):
         labels, stack, energy, count = cmp_sums[side] or merge_semblance_sums([])
         cmp[side] = (labels, semblance_from_sums(stack, energy, count), count)
+    truth_traces = None
+    if truth is not None:
+        truth_traces = {k: np.concatenate(v) if v else np.zeros(0, np.int64 if k == "entry" else np.float64)
+                        for k, v in truth_parts.items()}
     return {"semblance_before": semblance["before"], "semblance_after": semblance["after"], "n_traces": n_used,
             "cmp": cmp, "freqs_hz": freqs, "spectrum_before": spec_sum["before"] / max(n_spec, 1),
-            "spectrum_after": spec_sum["after"] / max(n_spec, 1), "traces_used": int(n_spec)}
+            "spectrum_after": spec_sum["after"] / max(n_spec, 1), "traces_used": int(n_spec),
+            "truth": truth_traces}
 
 
 # -- pair panels, shot gather, spacing ---------------------------------------
@@ -287,6 +315,63 @@ def _spacing(config: SurveyConfig, tables: dict) -> dict:
     velocities = np.array(sorted({*COMMON_VELOCITIES_MPS, a.near_surface_velocity_mps}))
     out["curve"] = {"freqs_hz": freqs, "velocities_mps": velocities,
                     "nyquist_spacing_m": nyquist_spacing_curve(freqs, velocities)}
+    return out
+
+
+# -- comparison with a synthetic truth ---------------------------------------
+
+def _truth_of(store: SurveyStore, tables: dict) -> tuple[dict | None, dict]:
+    """The synthetic truth of the survey, if its swaths' SEG-Y files have one
+    beside them: ``({"arrays", "file", "source", "receiver"}, status)`` with
+    the truth's station row of every station of the store, or ``(None,
+    status)`` with the reason in ``status``."""
+    files = sorted({str(Path(rec.file).with_name(TRUTH_FILE)) for rec in store.manifest()})
+    found = [f for f in files if Path(f).is_file()]
+    if not found:
+        return None, {"available": False, "reason": f"no {TRUTH_FILE} beside the swaths' SEG-Y files "
+                                                    "(only synthetic surveys have a truth)"}
+    if len(found) > 1 or len(files) > 1:
+        return None, {"available": False, "reason": "the swaths' SEG-Y files lie in several folders "
+                                                    f"({', '.join(files)}): no single truth for the survey"}
+    arrays = read_arrays(found[0])
+    status = {"available": False, "file": found[0]}
+    missing = [k for k in CLEAN_TRUTH_KEYS if k not in arrays]
+    if missing:
+        return None, status | {"reason": f"the truth file lacks the arrays {', '.join(missing)}"}
+    if abs(float(arrays["dt_s"]) - store.sample_interval_s) > 1e-9:
+        return None, status | {"reason": f"the truth's sample interval {float(arrays['dt_s'])} s is not the "
+                                         f"store's {store.sample_interval_s} s"}
+    rows = {}
+    for kind, _ in KINDS:
+        t = tables[kind]
+        rows[kind] = match_stations(t["x"], t["y"], reference_x=arrays[f"{kind}_x"],
+                                    reference_y=arrays[f"{kind}_y"], tolerance_m=TRUTH_MATCH_M)
+        if np.any(rows[kind] < 0):
+            return None, status | {"reason": f"{int(np.sum(rows[kind] < 0))} of {len(rows[kind])} {kind} "
+                                             f"stations have no truth station within {TRUTH_MATCH_M} m: "
+                                             "the truth belongs to another survey"}
+    return {"arrays": arrays, "file": found[0], **rows}, status | {"available": True}
+
+
+TRUTH_DEFINITION = (
+    "zero-lag correlation c = sum_t a(t) b(t) / sqrt(sum_t a(t)^2 sum_t b(t)^2) of each trace a with its clean "
+    "truth b (the same trace synthesised without station filters and without noise), both NMO corrected and "
+    "band limited like the semblance traces, over the analysis window; no time shift or scale is fitted"
+)
+
+
+def _truth_summary(status: dict, tm: dict, shots: dict, chosen: np.ndarray) -> dict:
+    """metrics.json's ``truth_comparison``: distributions of the per-trace
+    correlations over the traces used, the high-scattering zone and the rest."""
+    if not status.get("available") or tm["truth"] is None:
+        return status
+    t = tm["truth"]
+    zone = np.asarray(shots["high_scattering"], bool)[np.searchsorted(chosen, t["entry"])]
+    out = status | {"definition": TRUTH_DEFINITION, "traces": int(len(t["entry"]))}
+    for where, mask in (("survey", np.ones(len(zone), bool)), ("high_scattering_zone", zone),
+                        ("outside_zone", ~zone)):
+        out[where] = {side: distribution_summary(t[side][mask], edges=CORRELATION_EDGES)
+                      for side in ("before", "after")}
     return out
 
 
@@ -382,14 +467,17 @@ def write_report(store_path: str | Path, outdir: str | Path, *, solution: str | 
     chosen = even_shot_sample(table.count, max_traces=max_traces)
     spacing = _spacing(config, tables)
     binning = _cmp_binning(config, tables, spacing)
-    log.info("report of solution %s: %d of %d shots", sid, len(chosen), len(table.shot))
-    tm = _trace_metrics(store, config, table, chosen, an, binning)
+    truth, truth_status = _truth_of(store, tables)
+    log.info("report of solution %s: %d of %d shots%s", sid, len(chosen), len(table.shot),
+             "; comparison with the synthetic truth" if truth else "")
+    tm = _trace_metrics(store, config, table, chosen, an, binning, truth)
 
     shots, threshold = _shot_metrics(store, table, chosen, tm, tables, sol)
     cmp = _cmp_metrics(tm["cmp"], binning)
     panels = _pair_panels(store, table, an, pairs, tables, sol)
     gather = _display_gather(store, config, table, sol["source_scattering_fraction"], an)
     summary = _summary(shots)
+    truth_comparison = _truth_summary(truth_status, tm, shots, chosen)
     sampled = len(chosen) < len(table.shot)
     solutions_used = sorted({s.get("solution") for s in corrected.values()})
     doc = {
@@ -415,6 +503,7 @@ def write_report(store_path: str | Path, outdir: str | Path, *, solution: str | 
         "spectra": {"freqs_hz": tm["freqs_hz"], "mean_amplitude_before": tm["spectrum_before"],
                     "mean_amplitude_after": tm["spectrum_after"]},
         "spacing": spacing,
+        "truth_comparison": truth_comparison,
     }
     folder = ReportFolder(outdir)
     figures = _figures(doc, tables, sol, gather, an)
@@ -427,7 +516,17 @@ def write_report(store_path: str | Path, outdir: str | Path, *, solution: str | 
             "mean_semblance_after": summary["survey"]["mean_semblance_after"],
             "high_zone_semblance_before": summary["high_scattering_zone"]["mean_semblance_before"],
             "high_zone_semblance_after": summary["high_scattering_zone"]["mean_semblance_after"],
-            "spacing_aliased": {k: bool(spacing[k]["aliased"]) for k, _ in KINDS}}
+            "spacing_aliased": {k: bool(spacing[k]["aliased"]) for k, _ in KINDS},
+            "truth_median_correlation_before": _truth_median(truth_comparison, "before"),
+            "truth_median_correlation_after": _truth_median(truth_comparison, "after")}
+
+
+def _truth_median(truth_comparison: dict, side: str) -> float | None:
+    """Median correlation with the truth over the traces used, or None
+    without a truth."""
+    if not truth_comparison.get("available"):
+        return None
+    return truth_comparison["survey"][side]["median"]
 
 
 def _cmp_metrics(cmp: dict, binning: dict) -> dict:
@@ -460,4 +559,6 @@ def _figures(doc: dict, tables: dict, sol: dict, gather: dict | None, an: Analys
     out["snr"] = figs.snr_figure(doc["shots"], doc["cmp_bins"])
     out["snr_map"] = figs.snr_map_figure(doc["shots"], tables["receiver"]["x"], tables["receiver"]["y"])
     out["spacing"] = figs.spacing_figure(doc["spacing"])
+    if doc["truth_comparison"].get("available"):
+        out["truth_correlation"] = figs.truth_correlation_figure(doc["truth_comparison"])
     return out

@@ -216,3 +216,21 @@ def spacing_figure(spacing: dict) -> Figure:
     ax.grid(alpha=0.3, which="both")
     ax.legend(fontsize=8)
     return fig
+
+
+def truth_correlation_figure(truth: dict) -> Figure:
+    """Histograms of the per-trace correlation with the clean truth, before
+    and after correction, over the traces used and in the high-scattering
+    zone (``truth``: metrics.json's ``truth_comparison``)."""
+    fig = Figure(figsize=(9, 4.5))
+    ax = fig.subplots(gridspec_kw=_grid(left=0.09, right=0.97, bottom=0.12, top=0.91))
+    for where, side, label, style in (("survey", "before", "before", "-"), ("survey", "after", "after", "-"),
+                                      ("high_scattering_zone", "after", "after, high-scattering zone", "--")):
+        d = truth[where][side]
+        ax.stairs(np.asarray(d["counts"], float), np.asarray(d["edges"], float), ls=style, lw=1.5,
+                  label=f"{label} (median {d['median']:.3f})" if d["count"] else label)
+    ax.set(xlim=(-1, 1), xlabel="zero-lag correlation with the clean truth", ylabel="traces",
+           title=f"Corrected traces against the synthetic truth ({truth['traces']} traces)")
+    ax.legend(loc="upper left", fontsize=8)
+    ax.grid(alpha=0.3)
+    return fig

@@ -25,6 +25,15 @@ SNR_DEFINITION = (
     "(nothing above the noise). Shots use their live trace count as N, CMP bins their fold."
 )
 
+TRUTH_DEFINITION = (
+    "Correlation with the truth: on a synthetic survey each trace has a clean truth b(t), the same trace "
+    "synthesised without station filters and without noise. Both it and the trace a(t) are NMO corrected and "
+    "band limited as for the semblance, and compared over the analysis window W at zero lag: "
+    "c = &Sigma;<sub>t&isin;W</sub> a(t) b(t) / (&Sigma;<sub>t&isin;W</sub> a(t)<sup>2</sup> "
+    "&Sigma;<sub>t&isin;W</sub> b(t)<sup>2</sup>)<sup>1/2</sup>, with no time shift or scale fitted "
+    "(1: the trace is the truth up to a positive factor). Before: the input traces; after: the corrected ones."
+)
+
 _STYLE = """
 body { font-family: sans-serif; max-width: 1200px; margin: 1em auto; padding: 0 1em; color: #222; }
 .caution { border: 3px solid #a00; background: #fee; padding: 0.8em 1em; font-weight: bold; font-size: 1.1em; }
@@ -71,6 +80,27 @@ def _spacing_warnings(doc: dict) -> list[str]:
     return out
 
 
+def _truth_section(doc: dict, files: dict) -> list[str]:
+    t = doc.get("truth_comparison") or {}
+    if not t.get("available"):
+        reason = t.get("reason", "no truth")
+        return [f"<p class='note'>No comparison with a synthetic truth: {html.escape(reason)}.</p>"]
+    rows = []
+    for where, label in (("survey", "traces used"), ("high_scattering_zone", "high-scattering zone"),
+                         ("outside_zone", "outside the zone")):
+        b, a = t[where]["before"], t[where]["after"]
+        rows.append([label, a["count"], b["median"], a["median"], a["q10"], a["q25"], a["q75"], a["q90"]])
+    scope = ("every trace of the survey" if not doc["sampling"]["sampled"] else
+             f"the {t['traces']} traces of the sampled shots")
+    return ["<h2>Comparison with the synthetic truth</h2>",
+            f"<p>Truth file {html.escape(str(t['file']))}; {scope}. Median correlation with the truth: "
+            f"<b>{_fmt(t['survey']['before']['median'])} before, {_fmt(t['survey']['after']['median'])} after "
+            f"correction</b>.</p>",
+            _table(["traces", "count", "median before", "median after", "after: 10%", "25%", "75%", "90%"], rows),
+            f"<p>{TRUTH_DEFINITION} The high-scattering zone holds the traces of the zone's shots.</p>",
+            _figure(files, "truth_correlation", "correlation with the truth before and after")]
+
+
 def build_page(doc: dict, files: dict[str, str]) -> str:
     """index.html from the metrics document and the figures' file names."""
     s, a, samp = doc["summary"], doc["analysis"], doc["sampling"]
@@ -107,6 +137,7 @@ def build_page(doc: dict, files: dict[str, str]) -> str:
         ["shots", "count", "mean semblance before", "mean semblance after", "after / before",
          "median S/N before", "median S/N after"], rows))
     parts.append(f"<p>{SEMBLANCE_DEFINITION} {SNR_DEFINITION}</p>")
+    parts += _truth_section(doc, files)
 
     parts.append("<h2>Station maps</h2><p>Attributes of the solution's station filters in survey coordinates. "
                  "Stations with too few pairs carry the identity filter and are drawn as black crosses. "

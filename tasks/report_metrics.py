@@ -15,6 +15,11 @@
 - :func:`even_shot_sample`, :func:`extreme_station_pairs`,
   :func:`upper_quantile_mask`, :func:`row_repeatability`,
   :func:`nyquist_spacing_curve`: selections and summaries.
+- Comparison with a synthetic survey's truth: :func:`match_stations` (the
+  store's stations in the truth's tables), :func:`truth_clean_traces` (the
+  same traces without station filters and noise; :func:`batch_quality`
+  correlates them with the traces in the analysis band and window) and
+  :func:`distribution_summary`.
 """
 
 from __future__ import annotations
@@ -23,7 +28,8 @@ import numpy as np
 import scipy.fft as sfft
 from scipy.spatial import cKDTree
 
-from .errors import ConfigError
+from . import synthetic
+from .errors import ConfigError, GeometryError
 from .moveout import lmo_correct, nmo_correct
 from .quality import (
     amplitude_spectrum, bandpass, cmp_bin_indices, grouped_semblance, signal_to_noise, zero_lag_correlation,
@@ -86,13 +92,16 @@ def _weights(window_weights, ns: int) -> np.ndarray:
 
 def batch_quality(
     flat: np.ndarray, *, shots: np.ndarray, cmp_keys: np.ndarray, dt_s: float, band_hz: tuple[float, float],
-    band_taper_hz: float, start: int, stop: int, window_weights: np.ndarray,
+    band_taper_hz: float, start: int, stop: int, window_weights: np.ndarray, truth: np.ndarray | None = None,
 ) -> dict:
     """QC numbers of one batch of whole shots of moveout-corrected traces.
 
     flat float [n, ns] (:func:`analysis_traces` with ``band_hz=None``);
     shots int [n] and cmp_keys int [n] (:func:`cmp_bin_keys`) per trace;
-    ``start:stop`` the analysis window in samples; window_weights float [ns].
+    ``start:stop`` the analysis window in samples; window_weights float [ns];
+    truth: optional float [n, ns], the clean truth of each trace
+    (:func:`truth_clean_traces`) moveout corrected and band limited alike
+    (:func:`analysis_traces` with the same band and flanks).
     Returns a dict:
 
     - ``shot``, ``semblance``, ``count``: :func:`~descatter.tasks.quality.grouped_semblance`
@@ -102,15 +111,26 @@ def batch_quality(
       batches with :func:`merge_semblance_sums`);
     - ``freqs_hz`` float64 [n_fft // 2 + 1] and ``spectrum_sum``: the sum over
       traces of ``|rfft|`` of the windowed, not band-limited traces
-      (:func:`~descatter.tasks.quality.amplitude_spectrum` times ``n``).
+      (:func:`~descatter.tasks.quality.amplitude_spectrum` times ``n``);
+    - with ``truth``, ``truth_correlation`` float64 [n]: the zero-lag
+      correlation of each band-limited trace ``a`` with its truth ``b`` over
+      the window, ``sum_t a b / sqrt(sum_t a^2 sum_t b^2)``
+      (:func:`~descatter.tasks.quality.zero_lag_correlation`; no shift or
+      scale fitted, 0 where either has no energy there).
     """
     x = np.asarray(flat, np.float64)
     freqs, mean_spectrum = amplitude_spectrum(x * _weights(window_weights, x.shape[1]), dt_s=dt_s)
     limited = bandpass(x, dt_s=dt_s, band_hz=band_hz, taper_hz=max(float(band_taper_hz), 1e-6))
     labels, s, count = grouped_semblance(limited, shots, start=start, stop=stop)
-    return {"shot": labels, "semblance": s, "count": count,
-            "cmp": semblance_sums(limited, cmp_keys, start=start, stop=stop),
-            "freqs_hz": freqs, "spectrum_sum": mean_spectrum * x.shape[0]}
+    out = {"shot": labels, "semblance": s, "count": count,
+           "cmp": semblance_sums(limited, cmp_keys, start=start, stop=stop),
+           "freqs_hz": freqs, "spectrum_sum": mean_spectrum * x.shape[0]}
+    if truth is not None:
+        b = np.asarray(truth, np.float64)
+        if b.shape != x.shape:
+            raise ConfigError(f"truth has shape {b.shape}: expected one clean trace per trace, {x.shape}")
+        out["truth_correlation"] = zero_lag_correlation(limited, b, start=start, stop=stop)
+    return out
 
 
 def cmp_bin_keys(cmp_x: np.ndarray, cmp_y: np.ndarray, *, bin_m: tuple[float, float],
@@ -361,3 +381,96 @@ def nyquist_spacing_curve(freqs_hz: np.ndarray, velocities_mps: np.ndarray) -> n
     if np.any(f <= 0) or np.any(v <= 0):
         raise ConfigError("frequencies and velocities must be positive")
     return v[:, None] / (2.0 * f[None, :])
+
+
+# --------------------------------------------------------------------------- comparison with a synthetic truth
+
+# truth arrays (tasks.synthetic.TRUTH_KEYS) the clean traces are made from
+CLEAN_TRUTH_KEYS = (
+    "source_x", "source_y", "receiver_x", "receiver_y", "source_filter", "receiver_filter", "filter_t0_s", "dt_s",
+    "velocity_t0_s", "velocity_vrms_mps", "reflector_t0_s", "reflector_amplitude", "peak_hz", "scenario", "seed",
+)
+
+
+def match_stations(x: np.ndarray, y: np.ndarray, *, reference_x: np.ndarray, reference_y: np.ndarray,
+                   tolerance_m: float) -> np.ndarray:
+    """Row of the nearest reference station for each station, by position.
+
+    x, y float [n]; reference_x, reference_y float [m] (m). Returns int64
+    [n]: the reference row nearest to each station, -1 where none lies
+    within ``tolerance_m`` (or there are no reference stations).
+    """
+    px = np.column_stack([np.asarray(x, np.float64).reshape(-1), np.asarray(y, np.float64).reshape(-1)])
+    ref = np.column_stack([np.asarray(reference_x, np.float64).reshape(-1),
+                           np.asarray(reference_y, np.float64).reshape(-1)])
+    if not tolerance_m >= 0:
+        raise ConfigError(f"tolerance_m = {tolerance_m}: expected a distance >= 0 m")
+    if len(ref) == 0 or len(px) == 0:
+        return np.full(len(px), -1, np.int64)
+    distance, row = cKDTree(ref).query(px)
+    return np.where(distance <= tolerance_m, row, -1).astype(np.int64)
+
+
+def truth_clean_traces(truth: dict, source_rows: np.ndarray, receiver_rows: np.ndarray, *,
+                       n_samples: int) -> np.ndarray:
+    """The clean traces of a synthetic survey: its earth response without
+    station filters and without noise, for any traces of it.
+
+    truth: the arrays of a synthetic truth file (:data:`descatter.tasks.synthetic.TRUTH_KEYS`;
+    those of :data:`CLEAN_TRUTH_KEYS` are used); source_rows, receiver_rows
+    int [n]: rows of the truth's station tables (see :func:`match_stations`).
+    Returns float32 [n, n_samples], sample k at time k * dt_s:
+    :func:`descatter.tasks.synthetic.synthesize` with ``station_filters=False,
+    noise=False`` (the reflections through the Ricker wavelet at their
+    hyperbolic moveout times, offsets from the truth's station positions),
+    the same samples as the truth's own ``clean`` traces.
+    """
+    missing = [k for k in CLEAN_TRUTH_KEYS if k not in truth]
+    if missing:
+        raise ConfigError(f"the synthetic truth lacks {', '.join(missing)}: expected the keys of "
+                          f"descatter.tasks.synthetic.TRUTH_KEYS (write it with 'descatter synth')")
+    src = np.asarray(source_rows, np.int64).reshape(-1)
+    rcv = np.asarray(receiver_rows, np.int64).reshape(-1)
+    for name, rows, kind in (("source_rows", src, "source"), ("receiver_rows", rcv, "receiver")):
+        n = len(truth[f"{kind}_x"])
+        if rows.size and (rows.min() < 0 or rows.max() >= n):
+            raise GeometryError(f"{name} spans {rows.min()}..{rows.max()}: expected rows 0..{n - 1} of the "
+                                f"truth's {kind} stations")
+    dt = float(truth["dt_s"])
+    n_filter = np.asarray(truth["source_filter"]).shape[1]
+    spec = synthetic.SyntheticSpec(
+        scenario=str(truth["scenario"]), seed=int(truth["seed"]), n_samples=int(n_samples), dt_s=dt,
+        velocity=tuple(zip(np.asarray(truth["velocity_t0_s"], float).tolist(),
+                           np.asarray(truth["velocity_vrms_mps"], float).tolist())),
+        reflectors=tuple(zip(np.asarray(truth["reflector_t0_s"], float).tolist(),
+                             np.asarray(truth["reflector_amplitude"], float).tolist())),
+        peak_hz=float(truth["peak_hz"]), filter_lead_s=-float(truth["filter_t0_s"]),
+        filter_length_s=n_filter * dt, static_limit_s=0.0,  # statics play no part in clean traces
+    )
+    stations = {}
+    for kind in synthetic.KINDS:
+        x, y = np.asarray(truth[f"{kind}_x"], float), np.asarray(truth[f"{kind}_y"], float)
+        zero = np.zeros(len(x))
+        stations[kind] = synthetic.FilterTruth(filter=np.asarray(truth[f"{kind}_filter"], float), static_s=zero,
+                                               log_amplitude=zero, scattering_fraction=zero, x=x, y=y)
+    station_truth = synthetic.StationTruth(sources=stations["source"], receivers=stations["receiver"],
+                                           filter_t0_s=float(truth["filter_t0_s"]), dt_s=dt)
+    return synthetic.synthesize(spec, station_truth, src, rcv, station_filters=False, noise=False)
+
+
+def distribution_summary(values: np.ndarray, *, edges: np.ndarray) -> dict:
+    """Count, mean, median and quartiles and deciles of the finite
+    ``values`` (numpy's linear-interpolation quantiles), and their histogram
+    over ``edges`` (``numpy.histogram``: bins closed on the left, the last
+    one on both sides). values float [n]; edges float [k + 1], increasing.
+    Returns a dict of plain numbers (NaN statistics when nothing is finite)
+    and ``counts`` int64 [k]."""
+    v = np.asarray(values, np.float64).reshape(-1)
+    v = v[np.isfinite(v)]
+    e = np.asarray(edges, np.float64).reshape(-1)
+    if e.size < 2 or np.any(np.diff(e) <= 0):
+        raise ConfigError(f"edges has {e.size} values: expected at least two, strictly increasing")
+    q = np.quantile(v, [0.1, 0.25, 0.5, 0.75, 0.9]) if v.size else np.full(5, np.nan)
+    return {"count": int(v.size), "mean": float(v.mean()) if v.size else float("nan"),
+            "median": float(q[2]), "q10": float(q[0]), "q25": float(q[1]), "q75": float(q[3]), "q90": float(q[4]),
+            "edges": e, "counts": np.histogram(v, bins=e)[0].astype(np.int64)}

@@ -1,7 +1,9 @@
 """The QC report on a tiny synthetic scattering survey: the numbers behind
 the pictures, recomputed here from the store with the kernels of
 descatter.tasks.quality (and scipy.signal.correlate as the reference
-correlation), against metrics.json and the page."""
+correlation), against metrics.json and the page; the comparison with the
+survey's truth against the clean traces the synthetic writer stored in
+truth.npz."""
 
 from __future__ import annotations
 
@@ -21,6 +23,7 @@ from descatter.flows.report import write_report
 from descatter.flows.solve import estimate_survey
 from descatter.flows.stations_table import write_station_table
 from descatter.flows.synth import write_synthetic_survey
+from descatter.storage.arrays_file import read_arrays
 from descatter.storage.config_file import load_config
 from descatter.storage.estimation import read_solution
 from descatter.storage.stations import read_qc_flags, read_stations, read_swath_geometry
@@ -81,6 +84,7 @@ def test_figures_exist_are_png_and_are_on_the_page(built):
     figures = built["result"]["figures"]
     assert {"stations_sources", "stations_receivers", "pair_correlations", "shot_gather", "spectra", "snr",
             "snr_map", "spacing"} <= set(figures)
+    assert "truth_correlation" in figures  # a synthetic survey: its truth lies beside the SEG-Y files
     for name, path in figures.items():
         data = Path(path).read_bytes()
         assert data[:8] == PNG_MAGIC, name
@@ -243,3 +247,79 @@ def test_batches_of_shots_give_the_same_numbers(built, monkeypatch):
     cmp = report._cmp_metrics(tm["cmp"], binning)
     np.testing.assert_allclose(cmp["semblance_after"], m["cmp_bins"]["semblance_after"], rtol=1e-12)
     np.testing.assert_allclose(tm["spectrum_after"], m["spectra"]["mean_amplitude_after"], rtol=1e-12)
+
+
+def test_truth_comparison_matches_the_stored_clean_traces(built):
+    m, cfg, result = built["metrics"], built["config"], built["result"]
+    t = m["truth_comparison"]
+    assert t["available"] and Path(t["file"]) == built["root"] / "survey" / "truth.npz"
+    # truth.npz's own clean traces (tasks.synthetic.TRUTH_KEYS: swaths in order, recording order within each)
+    clean = read_arrays(built["root"] / "survey" / "truth.npz")["clean"]
+    store = SurveyStore.open(built["store"])
+    assert store.swath_names() == ["line01", "line02", "line03"]
+    a, v = cfg.analysis, np.asarray(cfg.analysis.velocity, float)
+    dt = store.sample_interval_s
+    start, stop = m["analysis"]["window_samples"]
+    zone_of = {(sw, sh): z for sw, sh, z in zip(m["shots"]["swath"], m["shots"]["shot"], m["shots"]["high_scattering"])}
+    corr = {"before": [], "after": []}
+    zone, first = [], 0
+    for name in store.swath_names():
+        g = read_swath_geometry(store, name)
+        n = len(g["shot"])
+        live = ((read_qc_flags(store, name) & np.uint16(cfg.qc.exclude_bits())) == 0) & (g["source_index"] >= 0)
+        truth = clean[first:first + n][live]
+        first += n
+
+        def flat(x):
+            y = nmo_correct(x, offset_m=g["offset"][live], delay_s=np.zeros(int(live.sum())), dt_s=dt,
+                            velocity_t0_s=v[:, 0], velocity_vrms_mps=v[:, 1], stretch_mute=a.stretch_mute)
+            return bandpass(y, dt_s=dt, band_hz=a.band_hz, taper_hz=cfg.correction.band_taper_hz)[:, start:stop]
+
+        b = flat(truth)
+        for side, array in (("before", "traces"), ("after", "corrected")):
+            x = flat(store.array(name, array)[:][live])
+            corr[side].append(np.einsum("ij,ij->i", x, b) / np.sqrt(np.einsum("ij,ij->i", x, x)
+                                                                      * np.einsum("ij,ij->i", b, b)))
+        zone.append([zone_of[(name, int(s))] for s in g["shot"][live]])
+    assert first == len(clean)
+    zone = np.concatenate(zone)
+    assert t["traces"] == len(zone) == m["sampling"]["traces_used"]
+    for side in ("before", "after"):
+        c = np.concatenate(corr[side])
+        assert t["survey"][side]["median"] == pytest.approx(np.median(c), rel=1e-9)
+        assert t["survey"][side]["q25"] == pytest.approx(np.quantile(c, 0.25), rel=1e-9)
+        assert t["high_scattering_zone"][side]["median"] == pytest.approx(np.median(c[zone]), rel=1e-9)
+        assert t["outside_zone"][side]["median"] == pytest.approx(np.median(c[~zone]), rel=1e-9)
+        assert sum(t["survey"][side]["counts"]) == len(c)
+    assert result["truth_median_correlation_after"] == t["survey"]["after"]["median"]
+    assert t["survey"]["after"]["median"] > t["survey"]["before"]["median"] + 0.3  # the correction's gain
+    page = built["page"]
+    assert "<h2>Comparison with the synthetic truth</h2>" in page
+    assert f"{t['survey']['after']['median']:.3g} after correction" in page
+    assert "no time shift or scale fitted" in page and "without station filters and without noise" in page
+
+
+def test_without_a_matching_truth_the_report_says_why(built, tmp_path, monkeypatch):
+    import descatter.flows.report as report
+
+    monkeypatch.setattr(report, "_figures", lambda *args: {})  # the figures are checked above; numbers here
+    monkeypatch.setattr(report, "TRUTH_FILE", "absent_truth.npz")
+    result = write_report(built["store"], tmp_path / "none")
+    t = json.loads((tmp_path / "none" / "metrics.json").read_text())["truth_comparison"]
+    assert result["truth_median_correlation_after"] is None and t["available"] is False
+    assert "no absent_truth.npz beside the swaths' SEG-Y files" in t["reason"]
+    assert "No comparison with a synthetic truth" in (tmp_path / "none" / "index.html").read_text()
+
+    monkeypatch.setattr(report, "TRUTH_FILE", "truth.npz")
+    real = report.read_arrays
+
+    def another_survey(path):
+        arrays = real(path)
+        arrays["receiver_x"] = arrays["receiver_x"] + 1.0  # every receiver 1 m off
+        return arrays
+
+    monkeypatch.setattr(report, "read_arrays", another_survey)
+    write_report(built["store"], tmp_path / "other")
+    t = json.loads((tmp_path / "other" / "metrics.json").read_text())["truth_comparison"]
+    assert t["available"] is False
+    assert "96 of 96 receiver stations have no truth station within 0.05 m" in t["reason"]

@@ -2,17 +2,22 @@ import numpy as np
 import pytest
 import scipy.signal
 
-from descatter.tasks.errors import ConfigError
+from descatter.tasks import synthetic
+from descatter.tasks.errors import ConfigError, GeometryError
 from descatter.tasks.moveout import nmo_correct
-from descatter.tasks.quality import amplitude_spectrum, bandpass, cmp_bin_indices, grouped_semblance, signal_to_noise
+from descatter.tasks.quality import (
+    amplitude_spectrum, band_weights, bandpass, cmp_bin_indices, grouped_semblance, signal_to_noise,
+)
 from descatter.tasks.report_metrics import (
     analysis_traces,
     batch_quality,
     cmp_bin_centres,
     cmp_bin_keys,
+    distribution_summary,
     even_shot_sample,
     extreme_station_pairs,
     group_signal_to_noise,
+    match_stations,
     mean_row_peak,
     merge_semblance_sums,
     nyquist_spacing_curve,
@@ -21,6 +26,7 @@ from descatter.tasks.report_metrics import (
     semblance_from_sums,
     semblance_sums,
     snr_gain_db,
+    truth_clean_traces,
     upper_quantile_mask,
 )
 
@@ -176,3 +182,120 @@ def test_cmp_bin_keys_round_trip_to_bin_numbers_and_centres():
     b = cmp_bin_indices(x, y, **kw)
     assert np.array_equal(ix, b[:, 0]) and np.array_equal(iy, b[:, 1])
     assert np.all(np.abs(cx - x) <= 6.25) and np.all(np.abs(cy - y) <= 12.5)
+
+
+# --------------------------------------------------------------------------- comparison with a synthetic truth
+
+
+def _numpy_band_limit(x: np.ndarray, *, dt_s: float, band_hz, taper_hz: float) -> np.ndarray:
+    # the zero-phase band limit spelled out with numpy.fft: weights times the spectrum of the
+    # zero-padded trace (length >= 2 ns, so the filter's tails do not wrap)
+    n_fft = 2 * x.shape[1]
+    w = band_weights(np.fft.rfftfreq(n_fft, dt_s), band_hz=band_hz, taper_hz=taper_hz)
+    return np.fft.irfft(np.fft.rfft(x, n_fft, axis=-1) * w, n_fft, axis=-1)[:, : x.shape[1]]
+
+
+def _truth_correlation(traces, truth, *, dt, band, taper, start, stop):
+    """batch_quality's correlation with the truth, the truth band limited as analysis_traces does."""
+    n, ns = traces.shape
+    clean = bandpass(truth, dt_s=dt, band_hz=band, taper_hz=taper)
+    q = batch_quality(traces, shots=np.arange(n), cmp_keys=np.zeros(n, np.int64), dt_s=dt, band_hz=band,
+                      band_taper_hz=taper, start=start, stop=stop, window_weights=np.ones(ns), truth=clean)
+    return q["truth_correlation"]
+
+
+def test_truth_correlation_matches_a_numpy_recomputation():
+    rng = np.random.default_rng(11)
+    dt, band, taper, start, stop = 0.004, (10.0, 65.0), 5.0, 30, 170
+    truth = rng.normal(size=(6, 200))
+    traces = 0.7 * truth + rng.normal(size=(6, 200))
+    got = _truth_correlation(traces, truth, dt=dt, band=band, taper=taper, start=start, stop=stop)
+    a = _numpy_band_limit(traces, dt_s=dt, band_hz=band, taper_hz=taper)[:, start:stop]
+    b = _numpy_band_limit(truth, dt_s=dt, band_hz=band, taper_hz=taper)[:, start:stop]
+    expected = [np.dot(a[i], b[i]) / np.sqrt(np.dot(a[i], a[i]) * np.dot(b[i], b[i])) for i in range(6)]
+    np.testing.assert_allclose(got, expected, rtol=1e-10)
+    assert np.all((got > 0.3) & (got < 0.95))  # signal and independent noise of comparable power
+
+
+def test_truth_correlation_is_one_for_a_scaled_copy_and_ignores_energy_outside_the_band():
+    rng = np.random.default_rng(12)
+    dt, n = 0.004, 256
+    truth = _numpy_band_limit(rng.normal(size=(3, n)), dt_s=dt, band_hz=(15.0, 40.0), taper_hz=3.0)
+    t = np.arange(n) * dt
+    # a scaled copy, its negative, and a copy plus a 110 Hz hum far outside the 10-65 Hz band and its flanks
+    traces = np.stack([3.0 * truth[0], -truth[1], truth[2] + 0.5 * np.sin(2 * np.pi * 110.0 * t)])
+    c = _truth_correlation(traces, truth, dt=dt, band=(10.0, 65.0), taper=5.0, start=20, stop=230)
+    np.testing.assert_allclose(c[:2], [1.0, -1.0], atol=1e-12)
+    assert c[2] > 0.99
+    raw = _truth_correlation(traces, truth, dt=dt, band=(0.0, 120.0), taper=1.0, start=20, stop=230)
+    assert raw[2] < 0.9  # the same hum inside the band does lower it
+    with pytest.raises(ConfigError, match="one clean trace per trace"):
+        batch_quality(traces, shots=np.arange(3), cmp_keys=np.zeros(3, np.int64), dt_s=dt, band_hz=(10.0, 65.0),
+                      band_taper_hz=5.0, start=0, stop=10, window_weights=np.ones(n), truth=truth[:2])
+
+
+def test_match_stations_against_a_dense_distance_matrix():
+    rng = np.random.default_rng(13)
+    ref = rng.uniform(0, 1000, size=(50, 2))
+    pick = rng.permutation(50)[:20]
+    pts = ref[pick] + rng.normal(scale=0.004, size=(20, 2))
+    pts[5] += 3.0  # no reference station within tolerance
+    rows = match_stations(pts[:, 0], pts[:, 1], reference_x=ref[:, 0], reference_y=ref[:, 1], tolerance_m=0.05)
+    d = np.hypot(pts[:, None, 0] - ref[None, :, 0], pts[:, None, 1] - ref[None, :, 1])
+    expected = np.where(d.min(axis=1) <= 0.05, d.argmin(axis=1), -1)
+    assert np.array_equal(rows, expected)
+    assert rows[5] == -1 and np.array_equal(np.delete(rows, 5), np.delete(pick, 5))
+    assert np.array_equal(match_stations(pts[:, 0], pts[:, 1], reference_x=[], reference_y=[], tolerance_m=1.0),
+                          np.full(20, -1))
+
+
+@pytest.fixture(scope="module")
+def tiny_truth():
+    spec = synthetic.synthetic_spec(size="tiny", scenario="scatter", seed=4)
+    tables = synthetic.stations(spec)
+    truth = synthetic.station_truth(spec, tables)
+    return spec, truth, synthetic.truth_arrays(spec, truth, tables)
+
+
+def test_truth_clean_traces_are_the_synthetic_clean_traces(tiny_truth):
+    spec, truth, arrays = tiny_truth
+    geom = synthetic.swath_traces(spec, 1)
+    src, rcv = geom.source_index[:60], geom.receiver_index[:60]
+    got = truth_clean_traces(arrays, src, rcv, n_samples=spec.n_samples)
+    expected = synthetic.synthesize(spec, truth, src, rcv, station_filters=False, noise=False)
+    assert got.dtype == np.float32 and np.array_equal(got, expected)
+    # and the clean trace itself around the first reflection: its amplitude times the Ricker wavelet
+    # (1 - 2 pi^2 fp^2 tau^2) exp(-pi^2 fp^2 tau^2) (Ricker 1953) centred on the hyperbolic moveout time
+    # t = sqrt(t0^2 + x^2 / v^2) (Yilmaz 2001, section 3.1); the next reflection is 0.13 s later
+    fp, dt = float(arrays["peak_hz"]), spec.dt_s
+    t0, amplitude = arrays["reflector_t0_s"][0], arrays["reflector_amplitude"][0]
+    v = np.interp(t0, arrays["velocity_t0_s"], arrays["velocity_vrms_mps"])
+    for i in (0, 37):
+        x = np.hypot(arrays["source_x"][src[i]] - arrays["receiver_x"][rcv[i]],
+                     arrays["source_y"][src[i]] - arrays["receiver_y"][rcv[i]])
+        t = np.sqrt(t0**2 + x**2 / v**2)
+        k = np.arange(int((t - 0.05) / dt), int((t + 0.05) / dt))
+        tau2 = (np.pi * fp * (k * dt - t)) ** 2
+        np.testing.assert_allclose(got[i, k], amplitude * (1 - 2 * tau2) * np.exp(-tau2), atol=1e-6)
+
+
+def test_truth_clean_traces_name_what_is_missing_or_out_of_range(tiny_truth):
+    spec, _, arrays = tiny_truth
+    partial = {k: v for k, v in arrays.items() if k != "reflector_t0_s"}
+    with pytest.raises(ConfigError, match="reflector_t0_s"):
+        truth_clean_traces(partial, [0], [0], n_samples=spec.n_samples)
+    n_rcv = len(arrays["receiver_x"])
+    with pytest.raises(GeometryError, match=f"receiver_rows spans 0..{n_rcv}"):
+        truth_clean_traces(arrays, [0, 1], [0, n_rcv], n_samples=spec.n_samples)
+
+
+def test_distribution_summary_by_hand():
+    # numpy's default (linear) quantiles: Hyndman & Fan (1996) definition 7
+    s = distribution_summary(np.array([4.0, 0.0, np.nan, 3.0, 1.0, 2.0]), edges=np.array([0.0, 1.0, 2.5, 4.0]))
+    assert s["count"] == 5 and s["mean"] == 2.0 and s["median"] == 2.0
+    assert (s["q10"], s["q25"], s["q75"], s["q90"]) == pytest.approx((0.4, 1.0, 3.0, 3.6))
+    assert s["counts"].tolist() == [1, 2, 2]  # [0, 1), [1, 2.5), [2.5, 4] closed on the right
+    empty = distribution_summary(np.array([np.nan]), edges=np.array([0.0, 1.0]))
+    assert empty["count"] == 0 and np.isnan(empty["median"]) and empty["counts"].tolist() == [0]
+    with pytest.raises(ConfigError):
+        distribution_summary(np.zeros(3), edges=np.array([1.0, 1.0]))
