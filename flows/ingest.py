@@ -27,7 +27,7 @@ from descatter.storage.segy import (
     SegyInfo, decode_fields, quick_fingerprint, read_block, scale_coordinates, scan_segy,
 )
 from descatter.storage.store import SurveyStore, SwathRecord, chunk_bounds, write_header_fields, write_trace_chunk
-from descatter.flows.geometry import swath_geometry
+from descatter.tasks.swath_geometry import swath_geometry
 from descatter.storage.sps import read_sps, sps_trace_geometry
 from descatter.storage.stations import read_stations, write_qc_flags, write_stations, write_swath_geometry
 from descatter.tasks.config import SurveyConfig

@@ -15,7 +15,7 @@ from pathlib import Path
 
 import numpy as np
 
-from descatter.flows.geometry import swath_geometry
+from descatter.tasks.swath_geometry import swath_geometry
 from descatter.storage.lock import StoreLock
 from descatter.storage.runlog import RunLog
 from descatter.storage.sps import compare_with_headers, read_sps, sps_trace_geometry

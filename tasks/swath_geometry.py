@@ -1,4 +1,4 @@
-"""Geometry and QC of a swath, built by the single writer before commit.
+"""Geometry and QC of one swath: a pure kernel the single writer runs before commit.
 
 Coordinates come from the trace headers (or from SEG SPS files); stations
 are named by snapped coordinates (or SPS station numbers) and looked up in
@@ -15,10 +15,10 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from descatter.tasks import geometry as geo
-from descatter.tasks import trace_qc
-from descatter.tasks.config import SurveyConfig
-from descatter.tasks.errors import ConfigError, TraceQcError
+from . import geometry as geo
+from . import trace_qc
+from .config import SurveyConfig
+from .errors import ConfigError, TraceQcError
 
 log = logging.getLogger(__name__)
 
