@@ -92,55 +92,43 @@ def spectra_chunk(store_path: str, swath: str, chunk: int, start: int, stop: int
 
 # -- statistics tasks (run on workers) ------------------------------------
 
-def _swath_inputs(store_path: str, swath: str, exclude_bits: int):
-    store = SurveyStore.open(store_path)
-    g = read_swath_geometry(store, swath, ["shot", "source_index", "receiver_index", "offset"])
-    flags = read_qc_flags(store, swath)
-    live = usable_traces(flags, g["source_index"], g["receiver_index"], exclude_bits=exclude_bits)
-    return g, live
-
-
-def receiver_pairs_task(store_path: str, swath: str, shots: np.ndarray, pairs: np.ndarray,
-                        exclude_bits: int) -> PairSums:
-    g, live = _swath_inputs(store_path, swath, exclude_bits)
-    rows = np.flatnonzero(np.isin(g["shot"], shots) & live)
+def receiver_pairs_task(store_path: str, swath: str, rows: np.ndarray, shot: np.ndarray, receiver: np.ndarray,
+                        pairs: np.ndarray) -> PairSums:
+    """Receiver-pair sums of one group of whole shots: ``rows`` (live traces of
+    the group, sorted) and their shot and receiver come from the driver, so a
+    task reads only its own spectra."""
     spectra = read_spectra(store_path, swath, rows)
-    return receiver_pair_sums(spectra, shot=g["shot"][rows], receiver=g["receiver_index"][rows], pairs=pairs)
+    return receiver_pair_sums(spectra, shot=shot, receiver=receiver, pairs=pairs)
 
 
-def source_pairs_task(store_path: str, swath: str, receivers: np.ndarray, pairs: np.ndarray,
-                      exclude_bits: int) -> PairSums:
-    g, live = _swath_inputs(store_path, swath, exclude_bits)
-    rows = np.flatnonzero(np.isin(g["receiver_index"], receivers) & live)
+def source_pairs_task(store_path: str, swath: str, rows: np.ndarray, source: np.ndarray, receiver: np.ndarray,
+                      pairs: np.ndarray) -> PairSums:
     spectra = read_spectra(store_path, swath, rows)
-    return source_pair_sums(spectra, shot_source=g["source_index"][rows], receiver=g["receiver_index"][rows],
-                            pairs=pairs)
+    return source_pair_sums(spectra, shot_source=source, receiver=receiver, pairs=pairs)
 
 
-def source_pairs_between_task(store_path: str, swath_a: str, swath_b: str, receivers: np.ndarray,
-                              pairs: np.ndarray, exclude_bits: int) -> PairSums:
-    sides = []
-    for swath in (swath_a, swath_b):
-        g, live = _swath_inputs(store_path, swath, exclude_bits)
-        rows = np.flatnonzero(np.isin(g["receiver_index"], receivers) & live)
-        sides.append((read_spectra(store_path, swath, rows), g["source_index"][rows], g["receiver_index"][rows]))
-    (sa, ia, ra), (sb, ib, rb) = sides
-    return source_pair_sums_between(sa, sb, shot_source_a=ia, receiver_a=ra, shot_source_b=ib, receiver_b=rb,
-                                    pairs=pairs)
+def source_pairs_between_task(store_path: str, swath_a: str, swath_b: str, side_a: tuple, side_b: tuple,
+                              pairs: np.ndarray) -> PairSums:
+    """Source pairs across two swaths at common receivers; each side is
+    (rows, source, receiver) of that swath's live traces at the receivers."""
+    (ra, ia, qa), (rb, ib, qb) = side_a, side_b
+    return source_pair_sums_between(read_spectra(store_path, swath_a, ra), read_spectra(store_path, swath_b, rb),
+                                    shot_source_a=ia, receiver_a=qa, shot_source_b=ib, receiver_b=qb, pairs=pairs)
 
 
-def log_power_task(store_path: str, swath: str, start: int, stop: int, sizes: dict, offset_bin_m: float,
-                   exclude_bits: int) -> LogPowerSums:
-    g, live = _swath_inputs(store_path, swath, exclude_bits)
+def log_power_task(store_path: str, swath: str, start: int, stop: int, source: np.ndarray, receiver: np.ndarray,
+                   offset_bin: np.ndarray, live: np.ndarray, sizes: dict) -> LogPowerSums:
     spectra = read_spectra(store_path, swath, slice(start, stop))
-    sl = slice(start, stop)
     return log_power_sums(
-        log_power(spectra), source=np.maximum(g["source_index"][sl], 0),
-        receiver=np.maximum(g["receiver_index"][sl], 0),
-        offset_bin=offset_bins(g["offset"][sl], bin_m=offset_bin_m),
-        n_sources=sizes["sources"], n_receivers=sizes["receivers"], n_offset_bins=sizes["offset_bins"],
-        live=live[sl],
+        log_power(spectra), source=np.maximum(source, 0), receiver=np.maximum(receiver, 0), offset_bin=offset_bin,
+        n_sources=sizes["sources"], n_receivers=sizes["receivers"], n_offset_bins=sizes["offset_bins"], live=live,
     )
+
+
+def _side(g: dict, mask: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Rows (live, in ``mask``), sources and receivers of one swath's traces."""
+    rows = np.flatnonzero(mask & g["live"])
+    return rows, g["source_index"][rows], g["receiver_index"][rows]
 
 
 def add_parts(a, b):
@@ -312,6 +300,9 @@ def run_statistics(store: SurveyStore, config: SurveyConfig, *, client, runlog: 
     exclude_bits = config.qc.exclude_bits()
     geoms = {r.name: read_swath_geometry(store, r.name, ["shot", "source_index", "receiver_index", "offset"])
              for r in records}
+    for name, g in geoms.items():  # read once here; the tasks get their rows, not the whole swath
+        g["live"] = usable_traces(read_qc_flags(store, name), g["source_index"], g["receiver_index"],
+                                  exclude_bits=exclude_bits)
     # pairs among the stations of committed swaths only: a removed swath's stations stay in the
     # append-only tables, and must not connect (or keep from bridging) what its traces no longer do
     present = {kind: _present(geoms, f"{kind}_index", len(table["x"]))
@@ -336,22 +327,27 @@ def run_statistics(store: SurveyStore, config: SurveyConfig, *, client, runlog: 
         wanted = []
         if not ckpt.is_done(0):
             rp_f = client.scatter(rp)
-            parts = [client.submit(receiver_pairs_task, str(store.path), rec.name, shots, rp_f, exclude_bits,
-                                   pure=False) for shots in _groups(g["shot"], est.shot_group_traces)]
+            parts = []
+            for shots in _groups(g["shot"], est.shot_group_traces):
+                rows = np.flatnonzero(np.isin(g["shot"], shots) & g["live"])
+                parts.append(client.submit(receiver_pairs_task, str(store.path), rec.name, rows, g["shot"][rows],
+                                           g["receiver_index"][rows], rp_f, pure=False))
             wanted.append(("receiver_pairs", tree_sum(client, parts)))
         else:
             done_before.append((rec.name, "receiver_pairs"))
         if not ckpt.is_done(1):
             sp_f = client.scatter(sp)
-            parts = [client.submit(source_pairs_task, str(store.path), rec.name, recv, sp_f, exclude_bits,
-                                   pure=False) for recv in _groups(g["receiver_index"][g["receiver_index"] >= 0],
-                                                                   est.shot_group_traces)]
+            parts = [client.submit(source_pairs_task, str(store.path), rec.name,
+                                   *_side(g, np.isin(g["receiver_index"], recv)), sp_f, pure=False)
+                     for recv in _groups(g["receiver_index"][g["receiver_index"] >= 0], est.shot_group_traces)]
             wanted.append(("source_pairs", tree_sum(client, parts)))
         else:
             done_before.append((rec.name, "source_pairs"))
         if not ckpt.is_done(2):
-            parts = [client.submit(log_power_task, str(store.path), rec.name, a, b, sizes, est.offset_bin_m,
-                                   exclude_bits, pure=False) for a, b in rec.chunk_bounds()]
+            bins = offset_bins(g["offset"], bin_m=est.offset_bin_m)
+            parts = [client.submit(log_power_task, str(store.path), rec.name, a, b, g["source_index"][a:b],
+                                   g["receiver_index"][a:b], bins[a:b], g["live"][a:b], sizes, pure=False)
+                     for a, b in rec.chunk_bounds()]
             wanted.append(("log_power", tree_sum(client, parts)))
         else:
             done_before.append((rec.name, "log_power"))
@@ -377,8 +373,10 @@ def run_statistics(store: SurveyStore, config: SurveyConfig, *, client, runlog: 
                 done_before.append((key, "source_pairs"))
                 continue
             bf = client.scatter(between)
-            parts = [client.submit(source_pairs_between_task, str(store.path), prev.name, rec.name, recv, bf,
-                                   exclude_bits, pure=False) for recv in _groups(common, est.shot_group_traces)]
+            parts = [client.submit(source_pairs_between_task, str(store.path), prev.name, rec.name,
+                                   _side(gp, np.isin(gp["receiver_index"], recv)),
+                                   _side(g, np.isin(g["receiver_index"], recv)), bf, pure=False)
+                     for recv in _groups(common, est.shot_group_traces)]
             jobs.append((key, "source_pairs", client.submit(write_stats_task, str(store.path), key, "source_pairs",
                                                             tree_sum(client, parts), fpx, pure=False)))
             report.stats_computed.append(key)
