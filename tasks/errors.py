@@ -51,3 +51,7 @@ class LockHeldError(DescatterError, RuntimeError):
 
 class TraceQcError(DescatterError, ValueError):
     """Traces carry a QC flag whose policy is ``error``."""
+
+
+class ClusterStartError(DescatterError, RuntimeError):
+    """A cluster profile's workers cannot be started here, or did not join in time."""
