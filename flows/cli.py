@@ -43,10 +43,26 @@ def _progress(description: str):
     )
 
 
-def _watch(client) -> None:
-    from descatter.flows.cluster import dashboard_text
+class ConsoleLogHandler(logging.Handler):
+    """Log lines through the error console: while progress bars are drawn
+    there, rich prints each line above them (a plain stream handler writes
+    into the bars). A DescatterError is bad input, not a bug: the command
+    ends with its message, so the flow's log lines about it go without
+    the traceback. (A public name: Prefect keeps a root handler it takes
+    for the user's, and replaces one whose class name starts with '_'.)"""
 
-    err_console.print(dashboard_text(client), highlight=False)
+    def emit(self, record: logging.LogRecord) -> None:
+        try:
+            if record.exc_info and isinstance(record.exc_info[1], DescatterError):
+                record = logging.makeLogRecord({**record.__dict__, "exc_info": None, "exc_text": None})
+            err_console.print(self.format(record), markup=False, highlight=False, soft_wrap=True)
+        except Exception:
+            self.handleError(record)
+
+
+def _opt_path(path: Optional[Path]) -> Optional[str]:
+    """A flow parameter: Prefect records parameters as JSON, so paths go as text."""
+    return None if path is None else str(path)
 
 
 # -- config ---------------------------------------------------------------
@@ -127,14 +143,16 @@ def ingest(
     cluster: str = typer.Option("local", "--cluster", help="local, threads, or tcp://HOST:PORT"),
     memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB"),
 ) -> None:
-    """Add SEG-Y swaths to a survey store (a committed file is skipped)."""
-    from descatter.flows.cluster import dask_client
-    from descatter.flows.ingest import ingest_swaths
+    """Add SEG-Y swaths to a survey store (a committed file is skipped).
+
+    Runs as the Prefect flow descatter-ingest.
+    """
     from descatter.storage.config_file import load_config
 
-    cfg = load_config(config)
-    with _progress("ingest") as bar, dask_client(cluster, workers=workers, memory_limit=memory_limit) as client:
-        _watch(client)
+    load_config(config)  # a bad config fails here, before Prefect and the cluster start
+    from descatter.flows.service import ingest_flow
+
+    with _progress("ingest") as bar:
         tasks: dict[str, int] = {}
 
         def progress(swath: str, done: int, total: int) -> None:
@@ -142,15 +160,16 @@ def ingest(
                 tasks[swath] = bar.add_task(swath, total=total)
             bar.update(tasks[swath], completed=done)
 
-        report = ingest_swaths(store, files, cfg, client=client, progress=progress)
-    for name in report.skipped:
+        report = ingest_flow(str(store), [str(f) for f in files], _opt_path(config), cluster=cluster,
+                             workers=workers, memory_limit=memory_limit, progress=progress)
+    for name in report["skipped"]:
         console.print(f"skipped {name}: already in the store")
-    if report.added:
-        mb = report.bytes_read / 1e6
+    if report["added"]:
+        mb = report["bytes_read"] / 1e6
         console.print(
-            f"added {len(report.added)} swath(s) ({', '.join(report.added)}), {report.traces} traces, "
-            f"{mb:.1f} MB in {report.seconds:.1f} s"
-            + (f"; resumed {report.resumed_chunks} finished chunk(s)" if report.resumed_chunks else "")
+            f"added {len(report['added'])} swath(s) ({', '.join(report['added'])}), {report['traces']} traces, "
+            f"{mb:.1f} MB in {report['seconds']:.1f} s"
+            + (f"; resumed {report['resumed_chunks']} finished chunk(s)" if report["resumed_chunks"] else "")
         )
 
 
@@ -164,14 +183,16 @@ def estimate(
     cluster: str = typer.Option("local", "--cluster", help="local, threads, or tcp://HOST:PORT"),
     memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB"),
 ) -> None:
-    """Measure every station's near-surface filter: spectra, pair statistics, global solve."""
-    from descatter.flows.cluster import dask_client
-    from descatter.flows.solve import estimate_survey
+    """Measure every station's near-surface filter: spectra, pair statistics, global solve.
+
+    Runs as the Prefect flow descatter-estimate.
+    """
     from descatter.storage.config_file import config_for_store
 
-    cfg = config_for_store(store, config)
-    with _progress("estimate") as bar, dask_client(cluster, workers=workers, memory_limit=memory_limit) as client:
-        _watch(client)
+    config_for_store(store, config)  # a bad store or config fails here, before Prefect and the cluster start
+    from descatter.flows.service import estimate_flow
+
+    with _progress("estimate") as bar:
         tasks: dict[str, int] = {}
 
         def progress(stage: str, done: int, total: int) -> None:
@@ -179,7 +200,8 @@ def estimate(
                 tasks[stage] = bar.add_task(stage, total=total)
             bar.update(tasks[stage], completed=done, total=total)
 
-        result = estimate_survey(store, cfg, client=client, progress=progress)
+        result = estimate_flow(str(store), _opt_path(config), cluster=cluster, workers=workers,
+                               memory_limit=memory_limit, progress=progress)
     s = result["summary"]
     console.print(f"solution {result['solution']} in {result['seconds']:.1f} s: "
                   f"{s['source_components']} source and {s['receiver_components']} receiver component(s); "
@@ -199,24 +221,19 @@ def apply(
     cluster: str = typer.Option("local", "--cluster", help="local, threads, or tcp://HOST:PORT"),
     memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB"),
 ) -> None:
-    """Apply a solution's correction filters to every trace (into each swath's 'corrected')."""
-    from descatter.flows.apply import apply_solution
-    from descatter.flows.cluster import dask_client
-    from descatter.storage.config_file import config_for_store
+    """Apply a solution's correction filters to every trace (into each swath's 'corrected').
 
-    cfg = config_for_store(store, config)
-    try:
-        if mode is not None:
-            cfg.correction.mode = mode
-        if prewhitening is not None:
-            cfg.correction.prewhitening = prewhitening
-    except ValueError as exc:
-        raise DescatterError(f"bad option: {exc}") from None
-    with _progress("apply") as bar, dask_client(cluster, workers=workers, memory_limit=memory_limit) as client:
-        _watch(client)
+    Runs as the Prefect flow descatter-apply.
+    """
+    from descatter.flows.service import apply_flow, correction_config
+
+    # a bad store, config or option fails here, before the flow and the cluster start
+    correction_config(store, config, mode=mode, prewhitening=prewhitening)
+    with _progress("apply") as bar:
         task = bar.add_task("apply", total=None)
-        result = apply_solution(store, cfg, client=client, solution=solution,
-                                progress=lambda stage, done, total: bar.update(task, completed=done, total=total))
+        result = apply_flow(str(store), _opt_path(config), solution=solution, cluster=cluster, workers=workers,
+                            memory_limit=memory_limit, mode=mode, prewhitening=prewhitening,
+                            progress=lambda stage, done, total: bar.update(task, completed=done, total=total))
     console.print(f"corrected {result['traces']} traces with solution {result['solution']} "
                   f"({result['settings']['mode']}, prewhitening {result['settings']['prewhitening']:g}) "
                   f"in {result['seconds']:.1f} s; {result['passed_through']} passed through unchanged")
@@ -354,7 +371,7 @@ def run(
     """ingest -> estimate -> apply as one Prefect flow on a Dask cluster."""
     from descatter.flows.service import run_flow
 
-    out = run_flow(str(store), [str(f) for f in files], str(config) if config else None, cluster=cluster,
+    out = run_flow(str(store), [str(f) for f in files], _opt_path(config), cluster=cluster,
                    workers=workers, memory_limit=memory_limit)
     console.print(f"ingest: added {out['ingest']['added']}, skipped {out['ingest']['skipped']}; "
                   f"solution {out['estimate']['solution']}; corrected {out['apply']['traces']} traces")
@@ -396,16 +413,23 @@ def lock(
 def demo(
     out: Path = typer.Argument(Path("demo-run"), help="folder for the demo survey, store and outputs"),
     size: str = typer.Option("demo", help="tiny or demo"),
-    workers: Optional[int] = typer.Option(None, "--workers", help="local worker processes"),
+    cluster: str = typer.Option("local", "--cluster", help="local, threads, or tcp://HOST:PORT"),
+    workers: Optional[int] = typer.Option(None, "--workers", help="local worker processes (default: one per core)"),
+    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB"),
 ) -> None:
-    """Run every stage on a synthetic survey and say where to look."""
+    """Run every stage on a synthetic survey and say where to look.
+
+    Ingest, estimate and apply run as their Prefect flows, on one Dask cluster.
+    """
     from descatter.flows.demo import run_demo
 
-    run_demo(out, size=size, workers=workers, console=console, progress=_progress)
+    run_demo(out, size=size, cluster=cluster, workers=workers, memory_limit=memory_limit, console=console,
+             progress=_progress)
 
 
 def main() -> None:
-    logging.basicConfig(level=logging.WARNING, format="%(levelname)s %(name)s: %(message)s")
+    logging.basicConfig(level=logging.WARNING, format="%(levelname)s %(name)s: %(message)s",
+                        handlers=[ConsoleLogHandler()])
     # distributed configures its loggers when first imported (lazily, later)
     os.environ.setdefault("DASK_LOGGING__DISTRIBUTED", "error")
     os.environ.setdefault("DASK_DISTRIBUTED__LOGGING__DISTRIBUTED", "error")

@@ -3,29 +3,42 @@
 synth -> DIR/survey, ingest -> DIR/store.zarr, estimate (station filters,
 DIR/stations.csv), apply, info, export -> DIR/export.sgy (input traces,
 checked against the store with segyio as an independent reader) and
-DIR/corrected.sgy, report -> DIR/report/index.html.
+DIR/corrected.sgy, report -> DIR/report/index.html. Ingest, estimate and
+apply are the service's Prefect flows, as in the single-stage commands.
 """
 
 from __future__ import annotations
 
+import contextlib
 import time
 from pathlib import Path
+from typing import Iterator
 
 from descatter.flows.cluster import dask_client
-from descatter.flows.apply import apply_solution
 from descatter.flows.export import export_segy
 from descatter.flows.report import write_report
-from descatter.flows.ingest import ingest_swaths
-from descatter.flows.solve import estimate_survey
+from descatter.flows.service import apply_flow, estimate_flow, ingest_flow
 from descatter.flows.stations_table import write_station_table
 from descatter.flows.summary import store_summary
 from descatter.flows.synth import write_synthetic_survey
-from descatter.storage.config_file import load_config
 from descatter.storage.segy_check import compare_with_store
 from descatter.tasks.errors import DescatterError
 
 
-def run_demo(out: str | Path, *, size: str = "demo", workers: int | None = None, console, progress) -> dict:
+@contextlib.contextmanager
+def shared_cluster(cluster: str, *, workers: int | None = None, memory_limit: str | None = None) -> Iterator[str]:
+    """A cluster the demo's three flows share: for ``local``, one local
+    cluster whose scheduler address each flow connects to (instead of each
+    starting its own worker processes); other values pass through."""
+    if cluster != "local":
+        yield cluster
+        return
+    with dask_client("local", workers=workers, memory_limit=memory_limit) as client:
+        yield client.scheduler.address
+
+
+def run_demo(out: str | Path, *, size: str = "demo", cluster: str = "local", workers: int | None = None,
+             memory_limit: str | None = None, console, progress) -> dict:
     out = Path(out)
     survey_dir, store, exported = out / "survey", out / "store.zarr", out / "export.sgy"
     stations = out / "stations.csv"
@@ -36,23 +49,22 @@ def run_demo(out: str | Path, *, size: str = "demo", workers: int | None = None,
     console.print(f"    {len(synth.files)} swath files, {synth.traces} traces")
 
     console.print(f"[bold]2/6 ingest[/] into {store}")
-    cfg = load_config(synth.config)
-    with progress("ingest") as bar, dask_client("local", workers=workers) as client:
+    config = str(synth.config)
+    with progress("ingest") as bar, shared_cluster(cluster, workers=workers, memory_limit=memory_limit) as address:
         tasks: dict[str, int] = {}
 
-        def on_progress(swath: str, done: int, total: int) -> None:
-            if swath not in tasks:
-                tasks[swath] = bar.add_task(swath, total=total)
-            bar.update(tasks[swath], completed=done)
+        def on_progress(part: str, done: int, total: int) -> None:
+            if part not in tasks:
+                tasks[part] = bar.add_task(part, total=total)
+            bar.update(tasks[part], completed=done, total=total)
 
-        report = ingest_swaths(store, synth.files, cfg, client=client, progress=on_progress)
-        console.print(f"    added {len(report.added)}, already there {len(report.skipped)}")
+        run = dict(cluster=address, workers=workers, memory_limit=memory_limit, progress=on_progress)
+        report = ingest_flow(str(store), [str(f) for f in synth.files], config, **run)
+        console.print(f"    added {len(report['added'])}, already there {len(report['skipped'])}")
         console.print("[bold]3/6 estimate[/] station filters from pair statistics over all shots")
-        est = estimate_survey(store, cfg, client=client,
-                              progress=lambda stage, done, total: on_progress(stage, done, total))
+        est = estimate_flow(str(store), config, **run)
         console.print("[bold]4/6 apply[/] correction filters to every trace")
-        applied = apply_solution(store, cfg, client=client,
-                                 progress=lambda stage, done, total: on_progress(stage, done, total))
+        applied = apply_flow(str(store), config, **run)
         console.print(f"    corrected {applied['traces']} traces")
     write_station_table(store, stations)
     s = est["summary"]

@@ -1,19 +1,27 @@
-"""Prefect flows: the service entry points (``descatter run``, deployments).
+"""Prefect flows: the service entry points (``descatter run``, the
+single-stage commands, deployments).
 
 Each flow owns one ``distributed.Client`` (an embedded local cluster by
 default, or a scheduler address) and runs the stages as coarse Prefect
 tasks: a stage is one task, and its chunk work goes straight to the Dask
 client from inside it (each Prefect task run costs far more than a chunk's
-Dask task, so chunks never become Prefect tasks). Checkpoints live in the store, not in Prefect's
-result cache. Flow names: ``descatter-run``, ``descatter-ingest``,
-``descatter-estimate``, ``descatter-apply``; parameters ``store``,
-``files``, ``config``.
+Dask task, so chunks never become Prefect tasks). Checkpoints live in the
+store, not in Prefect's result cache. Flow names: ``descatter-run``,
+``descatter-ingest``, ``descatter-estimate``, ``descatter-apply``;
+parameters ``store``, ``files``, ``config`` and the cluster's.
+
+Every flow also takes an optional ``progress`` callable, ``(part, done,
+total)``, called in the flow's process as chunks finish: the command line
+passes one that draws its progress bars. Prefect validates it as a callable;
+the parameters it records for the run hold an empty placeholder for it (a
+function is not JSON), and a deployment's runs leave it at None.
 """
 
 from __future__ import annotations
 
 import os
 from pathlib import Path
+from typing import Callable, Optional
 
 
 def prefect_environment() -> None:
@@ -34,58 +42,91 @@ from descatter.flows.cluster import dask_client  # noqa: E402
 from descatter.flows.ingest import ingest_swaths  # noqa: E402
 from descatter.flows.solve import estimate_survey  # noqa: E402
 from descatter.storage.config_file import config_for_store, load_config  # noqa: E402
+from descatter.tasks.config import SurveyConfig  # noqa: E402
+from descatter.tasks.errors import DescatterError  # noqa: E402
+
+# (part, done, total): a swath at ingest (traces); spectra, statistics, solve
+# at estimate; apply (traces)
+Progress = Callable[[str, int, int], None]
 
 
-def _progress_logger(stage: str):
-    """Progress to the flow-run log every 10%, and to a Prefect progress
-    artifact (shown in the server's UI) for the stage."""
+def _stage_progress(stage: str, forward: Progress | None = None) -> Progress:
+    """Progress of one stage: to the flow-run log every 10%, to one Prefect
+    progress artifact per part (shown in the server's UI), and on to
+    ``forward``."""
     from prefect.artifacts import create_progress_artifact, update_progress_artifact
 
     logger = get_run_logger()
-    last = {"pct": -10, "artifact": None}
+    parts: dict[str, dict] = {}
 
     def progress(name: str, done: int, total: int) -> None:
-        pct = int(100 * done / max(total, 1))
-        if pct >= last["pct"] + 10 or done == total:
-            last["pct"] = pct
-            logger.info("%s %s: %d/%d (%d%%)", stage, name, done, total, pct)
-            try:
-                if last["artifact"] is None:
-                    last["artifact"] = create_progress_artifact(
-                        float(pct), description=f"descatter {stage}: {name} {done}/{total}")
-                else:
-                    update_progress_artifact(last["artifact"], float(pct),
-                                             description=f"descatter {stage}: {name} {done}/{total}")
-            except Exception as exc:  # progress display must never fail a run
-                logger.debug("progress artifact not updated: %s", exc)
+        if forward is not None:
+            forward(name, done, total)
+        pct = 100 if done >= total else int(100 * done / total)
+        part = parts.setdefault(name, {"pct": None, "artifact": None})
+        if part["pct"] is not None and pct < part["pct"] + 10 and done < total:
+            return
+        part["pct"] = pct
+        logger.info("%s %s: %d/%d (%d%%)", stage, name, done, total, pct)
+        description = f"descatter {stage}: {name} {done}/{total}"
+        try:
+            if part["artifact"] is None:
+                part["artifact"] = create_progress_artifact(float(pct), description=description)
+            else:
+                update_progress_artifact(part["artifact"], float(pct), description=description)
+        except Exception as exc:  # progress display must never fail a run
+            logger.warning("progress artifact of %s %s not updated: %s", stage, name, exc)
 
     return progress
 
 
+def correction_config(store: str | Path, config_path: str | Path | None, *, mode: str | None = None,
+                      prewhitening: float | None = None) -> SurveyConfig:
+    """The apply stage's config: the given file (default: the one kept at
+    ingest) with the command line's correction overrides, checked."""
+    cfg = config_for_store(store, config_path)
+    try:
+        if mode is not None:
+            cfg.correction.mode = mode
+        if prewhitening is not None:
+            cfg.correction.prewhitening = prewhitening
+    except ValueError as exc:
+        raise DescatterError(f"bad option: {exc}") from None
+    return cfg
+
+
 @task(name="ingest-stage", cache_policy=None)
-def ingest_stage(store: str, files: list[str], config_path: str | None, client) -> dict:
+def ingest_stage(store: str, files: list[str], config_path: str | None, client,
+                 progress: Progress | None = None) -> dict:
     cfg = load_config(config_path)
-    report = ingest_swaths(store, files, cfg, client=client, progress=_progress_logger("ingest"))
+    report = ingest_swaths(store, files, cfg, client=client, progress=_stage_progress("ingest", progress))
     for w in report.warnings:
         get_run_logger().warning(w)
     return {"added": report.added, "skipped": report.skipped, "traces": report.traces,
-            "resumed_chunks": report.resumed_chunks, "seconds": round(report.seconds, 3)}
+            "resumed_chunks": report.resumed_chunks, "bytes_read": report.bytes_read,
+            "seconds": round(report.seconds, 3), "warnings": report.warnings}
 
 
 @task(name="estimate-stage", cache_policy=None)
-def estimate_stage(store: str, config_path: str | None, client) -> dict:
+def estimate_stage(store: str, config_path: str | None, client, progress: Progress | None = None) -> dict:
     cfg = config_for_store(store, config_path)
-    result = estimate_survey(store, cfg, client=client, progress=_progress_logger("estimate"))
+    result = estimate_survey(store, cfg, client=client, progress=_stage_progress("estimate", progress))
     for w in result["warnings"]:
         get_run_logger().warning(w)
-    return {"solution": result["solution"], "summary": result["summary"], "seconds": round(result["seconds"], 3)}
+    return {"solution": result["solution"], "summary": result["summary"], "warnings": result["warnings"],
+            "seconds": round(result["seconds"], 3)}
 
 
 @task(name="apply-stage", cache_policy=None)
-def apply_stage(store: str, config_path: str | None, client, solution: str | None = None) -> dict:
-    cfg = config_for_store(store, config_path)
-    result = apply_solution(store, cfg, client=client, solution=solution, progress=_progress_logger("apply"))
-    return {k: result[k] for k in ("solution", "traces", "passed_through", "resumed_chunks")}
+def apply_stage(store: str, config_path: str | None, client, solution: str | None = None,
+                mode: str | None = None, prewhitening: float | None = None,
+                progress: Progress | None = None) -> dict:
+    cfg = correction_config(store, config_path, mode=mode, prewhitening=prewhitening)
+    result = apply_solution(store, cfg, client=client, solution=solution, progress=_stage_progress("apply", progress))
+    out = {k: result[k] for k in ("solution", "traces", "passed_through", "resumed_chunks")}
+    out["settings"] = {k: result["settings"][k] for k in ("mode", "prewhitening")}
+    out["seconds"] = round(result["seconds"], 3)
+    return out
 
 
 def _announce(client) -> None:
@@ -95,39 +136,43 @@ def _announce(client) -> None:
 
 
 @flow(name="descatter-ingest")
-def ingest_flow(store: str, files: list[str], config: str | None = None, cluster: str = "local",
-                workers: int | None = None, memory_limit: str | None = None) -> dict:
+def ingest_flow(store: str, files: list[str], config: Optional[str] = None, cluster: str = "local",
+                workers: Optional[int] = None, memory_limit: Optional[str] = None,
+                progress: Optional[Progress] = None) -> dict:
     """Add SEG-Y swaths to a survey store."""
     with dask_client(cluster, workers=workers, memory_limit=memory_limit) as client:
         _announce(client)
-        return ingest_stage(store, [str(f) for f in files], config, client)
+        return ingest_stage(store, [str(f) for f in files], config, client, progress)
 
 
 @flow(name="descatter-estimate")
-def estimate_flow(store: str, config: str | None = None, cluster: str = "local", workers: int | None = None,
-                  memory_limit: str | None = None) -> dict:
+def estimate_flow(store: str, config: Optional[str] = None, cluster: str = "local", workers: Optional[int] = None,
+                  memory_limit: Optional[str] = None, progress: Optional[Progress] = None) -> dict:
     """Spectra, pair statistics and the global solve: a new current solution."""
     with dask_client(cluster, workers=workers, memory_limit=memory_limit) as client:
         _announce(client)
-        return estimate_stage(store, config, client)
+        return estimate_stage(store, config, client, progress)
 
 
 @flow(name="descatter-apply")
-def apply_flow(store: str, config: str | None = None, solution: str | None = None, cluster: str = "local",
-               workers: int | None = None, memory_limit: str | None = None) -> dict:
-    """Correct every trace with a solution's filters."""
+def apply_flow(store: str, config: Optional[str] = None, solution: Optional[str] = None, cluster: str = "local",
+               workers: Optional[int] = None, memory_limit: Optional[str] = None, mode: Optional[str] = None,
+               prewhitening: Optional[float] = None, progress: Optional[Progress] = None) -> dict:
+    """Correct every trace with a solution's filters (``mode`` and
+    ``prewhitening`` override the config's correction settings)."""
     with dask_client(cluster, workers=workers, memory_limit=memory_limit) as client:
         _announce(client)
-        return apply_stage(store, config, client, solution)
+        return apply_stage(store, config, client, solution, mode, prewhitening, progress)
 
 
 @flow(name="descatter-run")
-def run_flow(store: str, files: list[str], config: str | None = None, cluster: str = "local",
-             workers: int | None = None, memory_limit: str | None = None) -> dict:
+def run_flow(store: str, files: list[str], config: Optional[str] = None, cluster: str = "local",
+             workers: Optional[int] = None, memory_limit: Optional[str] = None,
+             progress: Optional[Progress] = None) -> dict:
     """ingest -> estimate -> apply, on one Dask cluster."""
     with dask_client(cluster, workers=workers, memory_limit=memory_limit) as client:
         _announce(client)
-        out = {"ingest": ingest_stage(store, [str(Path(f)) for f in files], config, client)}
-        out["estimate"] = estimate_stage(store, config, client)
-        out["apply"] = apply_stage(store, config, client)
+        out = {"ingest": ingest_stage(store, [str(Path(f)) for f in files], config, client, progress)}
+        out["estimate"] = estimate_stage(store, config, client, progress)
+        out["apply"] = apply_stage(store, config, client, progress=progress)
         return out

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import subprocess
 import sys
 import tomllib
@@ -64,10 +65,22 @@ def test_read_only_commands(tiny_survey, client, tmp_path):
     assert res.exit_code == 0
 
 
-def test_demo_runs_every_stage_on_a_tiny_survey(tmp_path):
+def test_demo_runs_every_stage_on_a_tiny_survey(prefect_harness, tmp_path):
     proc = subprocess.run([sys.executable, "-m", "descatter.flows.cli", "demo", str(tmp_path / "d"),
-                           "--size", "tiny", "--workers", "1"], capture_output=True, text=True, timeout=300)
+                           "--size", "tiny", "--workers", "1"], capture_output=True, text=True, timeout=300,
+                          env={**os.environ, "PREFECT_API_URL": prefect_harness})
     assert proc.returncode == 0, proc.stderr
+    # ingest, estimate and apply ran as the service's flows, reported to the session's server
+    from prefect.client.orchestration import get_client
+    from prefect.client.schemas.filters import FlowFilter, FlowFilterName
+
+    names = ["descatter-ingest", "descatter-estimate", "descatter-apply"]
+    with get_client(sync_client=True) as client:
+        runs = client.read_flow_runs(flow_filter=FlowFilter(name=FlowFilterName(any_=names)))
+        flows = {f.id: f.name for f in client.read_flows(flow_filter=FlowFilter(name=FlowFilterName(any_=names)))}
+    ours = sorted(flows[r.flow_id] for r in runs
+                  if r.parameters.get("store") == str(tmp_path / "d" / "store.zarr") and r.state.is_completed())
+    assert ours == sorted(names)
     assert "round trip: every sample and trace header equal" in proc.stdout
     assert "qualified geophysicist" in proc.stdout
     store = SurveyStore.open(tmp_path / "d" / "store.zarr")
