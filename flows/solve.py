@@ -25,13 +25,14 @@ from descatter.tasks.config import SurveyConfig
 from descatter.tasks.pairs import smooth_pair_sums
 from descatter.tasks.phase_sync import concat_phase_solutions, phase_sync
 from descatter.tasks.statistics import LogPowerSums, PairSums
+from descatter.tasks.statistics import coherence_totals, noise_to_signal
 
 log = logging.getLogger(__name__)
 
 FREQ_BLOCK = 8  # frequencies per phase-solve task
 # Part of every solution's inputs fingerprint: bump it when the solve's
 # method changes, so an unchanged-inputs rerun does not keep an old answer.
-SOLVE_VERSION = 3
+SOLVE_VERSION = 4
 
 
 @dataclass
@@ -144,6 +145,14 @@ def station_attributes(kind: str, amp_term: np.ndarray, phase, pairs: PairSums, 
 def solve_stations(store: SurveyStore, config: SurveyConfig, freqs: np.ndarray, n_fft: int, *, client=None):
     """The global solve: arrays of a solution and a summary dict."""
     totals = load_totals(store)
+    # The traces' noise-to-signal ratio per frequency, for the correction's prewhitening, from the
+    # unsmoothed sums: smoothing over frequency lowers |cross| wherever the relative phase of a pair
+    # turns with frequency (a relative static), which would read as noise.
+    coherent = total = 0.0
+    for p in (totals.receiver_pairs, totals.source_pairs):
+        c, t = coherence_totals(p.cross, p.power_a, p.power_b)
+        coherent, total = coherent + c, total + t
+    nu = noise_to_signal(coherent, total)
     smoothing = config.estimate.smoothing_hz
     if smoothing > 0 and len(freqs) > 1:
         # Windows longer than the station filters give finer spectra than the filters need, and
@@ -173,7 +182,8 @@ def solve_stations(store: SurveyStore, config: SurveyConfig, freqs: np.ndarray, 
     sph = _phases(client, totals.source_pairs, n_src, method, warm.get("source"))
     dt = store.sample_interval_s
     arrays = {"freq_hz": freqs, "amplitude_residual_rms": amp.residual_rms,
-              "receiver_phase_residual": rph.residual, "source_phase_residual": sph.residual}
+              "receiver_phase_residual": rph.residual, "source_phase_residual": sph.residual,
+              "noise_to_signal": nu}
     arrays |= station_attributes("source", src_amp, sph, totals.source_pairs, n_src, freqs, config, dt, n_fft)
     arrays |= station_attributes("receiver", rcv_amp, rph, totals.receiver_pairs, n_rcv, freqs, config, dt, n_fft)
     summary = {
@@ -185,6 +195,7 @@ def solve_stations(store: SurveyStore, config: SurveyConfig, freqs: np.ndarray, 
         "amplitude_residual_rms": float(np.mean(amp.residual_rms)),
         "receiver_phase_residual": float(np.mean(rph.residual)),
         "source_phase_residual": float(np.mean(sph.residual)),
+        "noise_to_signal_median": float(np.nanmedian(nu)) if np.any(np.isfinite(nu)) else None,
     }
     return arrays, summary
 

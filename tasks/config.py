@@ -185,11 +185,24 @@ class CorrectionConfig(_Section):
 
     mode: Literal["full", "phase"] = Field(
         "full", description="full (amplitude and phase) or phase (phase only)", json_schema_extra=_unit("choice"))
+    prewhitening_mode: Literal["measured", "fixed"] = Field(
+        "measured",
+        description="measured: eps(f) per frequency from the noise-to-signal power ratio the estimate measured "
+                    "in the pair coherence (a Wiener filter); fixed: one fraction, prewhitening, at every frequency",
+        json_schema_extra=_unit("choice"),
+    )
     prewhitening: float = Field(
         0.1, ge=0.0,
-        description="eps of conj(H) / (|H|^2 + eps) as a fraction of the trace's mean in-band |H|^2; about the "
+        description="fixed mode, and solutions estimated without a measured noise level: eps of "
+                    "conj(H) / (|H|^2 + eps) as a fraction of the trace's mean in-band |H|^2; about the "
                     "noise-to-signal power ratio (measured best on the synthetic survey)",
         json_schema_extra=_unit("fraction"),
+    )
+    prewhitening_scale: float = Field(
+        1.0, ge=0.0,
+        description="measured mode: eps(f) = prewhitening_scale x measured noise-to-signal ratio(f) x the trace's "
+                    "mean in-band |H|^2 (1 is the Wiener filter; measured best on the demo survey)",
+        json_schema_extra=_unit("factor"),
     )
     band_taper_hz: float = Field(
         5.0, ge=0.0, description="transition from the correction in the band to identity outside it",

@@ -15,6 +15,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .errors import ConfigError
+
 
 def _merge_pairs(pairs_a, pairs_b):
     """Union of two (n, 2) pair tables and the row of each input in it,
@@ -131,3 +133,67 @@ class LogPowerSums:
             np.add.at(cnt, inv.reshape(-1), rows[:, 2])
             cross[key] = np.column_stack([ij, cnt]).astype(np.int64)
         return LogPowerSums(sums, counts, cross, self.sum_sq + other.sum_sq, self.n_traces + other.n_traces)
+
+
+# --------------------------------------------------------------------------- noise level from the pairs
+
+# Coherences below this count as this: N/S at most 1 / RHO_FLOOR - 1 (~1e6), so a bin with no
+# coherent energy gets a finite, overwhelming prewhitening rather than an infinite one.
+RHO_FLOOR = 1e-6
+
+
+def coherence_totals(cross: np.ndarray, power_a: np.ndarray, power_b: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Pooled pair coherence pieces per frequency: ``(sum_p |cross_p|, sum_p sqrt(power_a_p power_b_p))``.
+
+    cross: complex [n_pairs, n_freq]; power_a, power_b: float [n_pairs, n_freq]
+    (the fields of :class:`PairSums`). Returns two float64 [n_freq]. Both are
+    sums over pairs, so the totals of receiver pairs and of source pairs add
+    up to the totals of both; :func:`noise_to_signal` turns them into a ratio.
+    """
+    c = np.asarray(cross)
+    a = np.asarray(power_a, dtype=np.float64)
+    b = np.asarray(power_b, dtype=np.float64)
+    if c.ndim != 2 or a.shape != c.shape or b.shape != c.shape:
+        raise ConfigError(f"cross {c.shape}, power_a {a.shape}, power_b {b.shape}: expected one shape "
+                         "[n_pairs, n_freq] for all three")
+    return np.abs(c).sum(axis=0), np.sqrt(a * b).sum(axis=0)
+
+
+def noise_to_signal(coherent: np.ndarray, total: np.ndarray) -> np.ndarray:
+    """Noise-to-signal power ratio per frequency from pooled pair coherence.
+
+    coherent, total: float [n_freq] from :func:`coherence_totals` (summed over
+    the pair sets to pool). Returns float64 [n_freq]::
+
+        rho(f) = sum_p |cross_p(f)| / sum_p sqrt(power_a_p(f) power_b_p(f))
+        N/S(f) = (1 - rho) / rho
+
+    with ``rho`` held at or above :data:`RHO_FLOOR`; NaN where ``total`` is 0
+    (no pair energy at that frequency: nothing measured).
+
+    Why: for two traces ``s + n_a`` and ``s + n_b`` sharing a signal of power
+    ``S`` with independent noise of power ``N`` each, over many records
+    ``|sum s conj(s)| / sqrt(P_a P_b) -> S / (S + N)``, so ``(1 - rho) / rho
+    -> N / S``. Pooling the sums over pairs weights each pair by its power.
+
+    Assumptions, and which way they err:
+    - neighbouring stations see the same earth response (after moveout), up
+      to their station filters, which cancel in ``rho``. Where neighbours'
+      earth responses differ (residual moveout, dip, lateral change) the
+      difference counts as noise: N/S is overstated, never understated, by
+      this effect;
+    - the noise is independent between the two traces of a pair;
+    - every pair has many records: the noise part of ``|cross|`` sums
+      incoherently and shrinks as ``1 / sqrt(count)`` of the coherent part,
+      so with few records per pair ``rho`` is biased up and N/S understated;
+    - two traces with unequal noise-to-signal ratios ``nu_a, nu_b`` give
+      ``1 / rho = sqrt((1 + nu_a)(1 + nu_b))``: the result is an average.
+    """
+    c = np.asarray(coherent, dtype=np.float64)
+    t = np.asarray(total, dtype=np.float64)
+    if c.shape != t.shape or c.ndim != 1:
+        raise ConfigError(f"coherent {c.shape} and total {t.shape}: expected one shape [n_freq]")
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rho = np.where(t > 0, c / t, np.nan)
+    rho = np.where(np.isnan(rho), np.nan, np.clip(rho, RHO_FLOOR, 1.0))
+    return (1.0 - rho) / rho

@@ -11,6 +11,7 @@ from descatter.tasks.correction import (
     correction_spectrum,
     grid_band_weight,
     least_squares_inverse,
+    prewhitening_spectrum,
     trace_correction,
     truncated_inverse_filters,
     unusable_responses,
@@ -190,6 +191,96 @@ def test_out_of_band_energy_passes_untouched():
     f = trace_correction(full, np.ones_like(full), [0, 0], [0, 0], prewhitening=0.3)
     plain = apply_correction(traces, f, n_fft=n_fft)
     assert np.max(np.abs(plain[0] - out_of_band)) > 0.05
+
+
+# --------------------------------------------------------------------------- per-frequency prewhitening
+
+
+def _wiener(h, p_e, p_n):
+    # Wiener (1949): for D = H E + N, E and N independent with powers P_e(f) and P_n(f), the F
+    # minimising the expected |F D - E|^2 at each frequency is conj(H) P_e / (|H|^2 P_e + P_n).
+    return np.conj(h) * p_e / (np.abs(h) ** 2 * p_e + p_n)
+
+
+def test_per_frequency_prewhitening_gives_the_wiener_filter():
+    # eps(f) = p(f) mean |H|^2 with p = P_n / (P_e mean |H|^2) is P_n / P_e: the Wiener filter.
+    rng = np.random.default_rng(21)
+    n = 40
+    h = _random_response(rng, (3, n))
+    p_e, p_n = rng.uniform(0.5, 2.0, n), rng.uniform(0.01, 1.5, n)
+    for row in h:
+        p = p_n / (p_e * np.mean(np.abs(row) ** 2))
+        np.testing.assert_allclose(correction_spectrum(row[None], prewhitening=p)[0], _wiener(row, p_e, p_n),
+                                   rtol=1e-12)
+    # over a band: the band's mean power; identity responses outside it pass exactly
+    band = np.arange(10, 30)
+    weight = np.zeros(n)
+    weight[band] = 1.0
+    row = np.ones(n, np.complex128)
+    row[band] = h[0, band]
+    p = p_n / (p_e * np.mean(np.abs(row[band]) ** 2))
+    got = trace_correction(row[None], np.ones((1, n)), [0], [0], prewhitening=p, band_weight=weight)[0]
+    np.testing.assert_allclose(got[band], _wiener(row[band], p_e[band], p_n[band]), rtol=1e-12)
+    np.testing.assert_array_equal(np.delete(got, band), 1.0)
+
+
+def test_per_frequency_prewhitening_minimises_the_error_by_brute_force():
+    # No formula on the reference side: per frequency, draw E and N at their powers, form D = H E + N,
+    # and search a 801 x 801 grid of complex F for the least sample mean of |F D - E|^2 (a quadratic
+    # in F, so exact from the sample moments <|D|^2>, <D conj E>, <|E|^2>). |F| <= 1 / |H| for any
+    # candidate worth having, so the grid spans +-2 / |H|.
+    rng = np.random.default_rng(22)
+    n_freq, m = 6, 200_000
+    h = _random_response(rng, n_freq)
+    p_e, p_n = rng.uniform(0.5, 2.0, n_freq), rng.uniform(0.05, 2.0, n_freq)
+    e = np.sqrt(p_e / 2) * (rng.normal(size=(m, n_freq)) + 1j * rng.normal(size=(m, n_freq)))
+    d = h * e + np.sqrt(p_n / 2) * (rng.normal(size=(m, n_freq)) + 1j * rng.normal(size=(m, n_freq)))
+    dd, de, ee = np.mean(np.abs(d) ** 2, 0), np.mean(d * np.conj(e), 0), np.mean(np.abs(e) ** 2, 0)
+    f = correction_spectrum(h[None], prewhitening=p_n / (p_e * np.mean(np.abs(h) ** 2)))[0]
+    for k in range(n_freq):
+        axis = np.linspace(-2, 2, 801) / abs(h[k])
+        grid = axis[:, None] + 1j * axis[None, :]
+        mse = np.abs(grid) ** 2 * dd[k] - 2 * np.real(grid * de[k]) + ee[k]
+        best = grid.flat[np.argmin(mse)]
+        step = axis[1] - axis[0]
+        # within two grid steps plus the sampling error of 2e5 draws (about 0.3 % of 1 / |H|)
+        assert abs(best - f[k]) < 2 * step + 0.01 / abs(h[k]), k
+        kernel_mse = abs(f[k]) ** 2 * dd[k] - 2 * np.real(f[k] * de[k]) + ee[k]
+        assert kernel_mse <= mse.min() * (1 + 1e-3), k
+
+
+def test_one_prewhitening_per_frequency_keeps_the_scalar_path():
+    rng = np.random.default_rng(23)
+    h = _random_response(rng, (4, 30))
+    weight = grid_band_weight(band_index=np.arange(8, 20), n_rfft=30, taper=3)
+    for band_weight in (None, weight):  # a constant spectrum is the scalar, bit for bit
+        np.testing.assert_array_equal(correction_spectrum(h, prewhitening=np.full(30, 0.2), band_weight=band_weight),
+                                      correction_spectrum(h, prewhitening=0.2, band_weight=band_weight))
+    varying = rng.uniform(0.0, 1.0, 30)
+    got = trace_correction(h[:2], h[2:], [0, 1, 1], [1, 0, 1], prewhitening=varying, band_weight=weight)
+    for k, (a, b) in enumerate(([0, 1], [1, 0], [1, 1])):  # reference: one trace at a time
+        np.testing.assert_allclose(got[k], correction_spectrum(h[a] * h[2 + b], prewhitening=varying,
+                                                               band_weight=weight), rtol=1e-13)
+    with pytest.raises(ConfigError, match=r"prewhitening has shape \(29,\)"):
+        correction_spectrum(h, prewhitening=varying[:29])
+    with pytest.raises(ConfigError, match=r"values \[-0.5\] out of range"):
+        correction_spectrum(h, prewhitening=np.r_[varying[:29], -0.5])
+    with pytest.raises(ConfigError, match="prewhitening = -0.1"):
+        correction_spectrum(h, prewhitening=-0.1)
+
+
+def test_prewhitening_spectrum_interpolates_the_band_and_holds_its_edges():
+    band_hz = np.array([10.0, 12.0, 14.0])
+    grid_hz = np.array([0.0, 10.0, 11.0, 13.5, 14.0, 30.0])
+    got = prewhitening_spectrum([0.5, 1.5, 0.25], band_hz=band_hz, grid_hz=grid_hz, scale=2.0)
+    # by hand: 2 x (0.5 held below, 0.5, (0.5 + 1.5) / 2, 1.5 + 0.75 (0.25 - 1.5), 0.25, 0.25 held above)
+    np.testing.assert_allclose(got, [1.0, 1.0, 2.0, 1.125, 0.5, 0.5], rtol=1e-15)
+    with pytest.raises(ConfigError, match=r"noise_to_signal holds \[nan\]"):
+        prewhitening_spectrum([0.5, np.nan, 0.25], band_hz=band_hz, grid_hz=grid_hz)
+    with pytest.raises(ConfigError, match="scale = -1"):
+        prewhitening_spectrum([0.5, 1.5, 0.25], band_hz=band_hz, grid_hz=grid_hz, scale=-1)
+    with pytest.raises(ConfigError, match="strictly increasing"):
+        prewhitening_spectrum([0.5, 1.5, 0.25], band_hz=band_hz[::-1], grid_hz=grid_hz)
 
 
 # --------------------------------------------------------------------------- application

@@ -1,0 +1,90 @@
+"""The noise-to-signal ratio from pair sums, against signal and noise planted at known powers."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from descatter.tasks.errors import ConfigError
+from descatter.tasks.statistics import RHO_FLOOR, coherence_totals, noise_to_signal
+
+
+def _gaussian(rng, shape, power):
+    """Circular complex Gaussian samples of the given power (E|x|^2) per last-axis column."""
+    return np.sqrt(np.asarray(power) / 2) * (rng.normal(size=shape) + 1j * rng.normal(size=shape))
+
+
+def _pair_sums(a, b):
+    """cross, power_a, power_b of records a, b: complex [n_pairs, n_records, n_freq]."""
+    return (a * np.conj(b)).sum(axis=1), (np.abs(a) ** 2).sum(axis=1), (np.abs(b) ** 2).sum(axis=1)
+
+
+def _planted(rng, *, n_pairs, n_records, signal, noise_a, noise_b=None, alike=1.0):
+    """Two traces per pair: g_a s + n_a and g_b s_b + n_b, with g unit-modulus station phases
+    (a station filter that the coherence must cancel), s_b = alike s + sqrt(1 - alike^2) s'."""
+    shape = (n_pairs, n_records, len(signal))
+    s = _gaussian(rng, shape, signal)
+    s_b = alike * s + np.sqrt(1 - alike**2) * _gaussian(rng, shape, signal)
+    g_a, g_b = (np.exp(2j * np.pi * rng.random((n_pairs, 1, len(signal)))) for _ in range(2))
+    a = g_a * s + _gaussian(rng, shape, noise_a)
+    b = g_b * s_b + _gaussian(rng, shape, noise_a if noise_b is None else noise_b)
+    return _pair_sums(a, b)
+
+
+def test_noise_to_signal_recovers_planted_ratios():
+    # Two traces s + n_a, s + n_b, independent noise of power N, signal of power S:
+    # E[cross] = n S, E[P_a] = E[P_b] = n (S + N), so |cross| / sqrt(P_a P_b) -> S / (S + N)
+    # and (1 - rho) / rho -> N / S. With 60 pairs x 2500 records the estimate's scatter is about
+    # 1 % of N/S (rho's error ~ (1 + N/S) / sqrt(1.5e5); measured over seeds): 4 % is > 3 sigma.
+    rng = np.random.default_rng(11)
+    signal = np.array([1.0, 2.0, 0.5, 1.0, 4.0, 1.0])
+    ratio = np.array([0.1, 0.3, 1.0, 2.0, 0.5, 3.0])
+    cross, pa, pb = _planted(rng, n_pairs=60, n_records=2500, signal=signal, noise_a=ratio * signal)
+    got = noise_to_signal(*coherence_totals(cross, pa, pb))
+    np.testing.assert_allclose(got, ratio, rtol=0.04)
+
+
+def test_unequal_noise_gives_the_geometric_mean_of_one_plus_the_ratios():
+    # Traces with N/S = nu_a and nu_b: rho -> S / sqrt((S + N_a)(S + N_b)), so
+    # 1 + N/S -> sqrt((1 + nu_a)(1 + nu_b)) (what the docstring states).
+    rng = np.random.default_rng(12)
+    signal = np.ones(3)
+    nu_a, nu_b = np.array([0.2, 1.0, 0.1]), np.array([0.8, 3.0, 2.0])
+    cross, pa, pb = _planted(rng, n_pairs=100, n_records=4000, signal=signal, noise_a=nu_a, noise_b=nu_b)
+    got = noise_to_signal(*coherence_totals(cross, pa, pb))
+    np.testing.assert_allclose(1 + got, np.sqrt((1 + nu_a) * (1 + nu_b)), rtol=0.02)
+
+
+def test_unlike_earth_responses_overstate_the_noise():
+    # Neighbours whose signals correlate only 0.8 (after the station filters): rho -> 0.8 S / (S + N),
+    # so the estimate sits above the planted N/S: 1 / (0.8 / 1.5) - 1 = 0.875 against 0.5.
+    rng = np.random.default_rng(13)
+    signal, ratio = np.ones(2), np.array([0.5, 0.5])
+    cross, pa, pb = _planted(rng, n_pairs=100, n_records=4000, signal=signal, noise_a=ratio, alike=0.8)
+    got = noise_to_signal(*coherence_totals(cross, pa, pb))
+    np.testing.assert_allclose(got, 1 / (0.8 / 1.5) - 1, rtol=0.03)
+
+
+def test_few_records_per_pair_understate_the_noise():
+    # With 3 records a pair's noise products do not cancel in |cross|: rho is biased up.
+    rng = np.random.default_rng(14)
+    signal, ratio = np.ones(2), np.array([1.0, 1.0])
+    cross, pa, pb = _planted(rng, n_pairs=20000, n_records=3, signal=signal, noise_a=ratio)
+    got = noise_to_signal(*coherence_totals(cross, pa, pb))
+    assert np.all(got < 0.8 * ratio)
+
+
+def test_totals_of_pair_sets_add_up_and_edge_cases():
+    rng = np.random.default_rng(15)
+    cross, pa, pb = _planted(rng, n_pairs=30, n_records=50, signal=np.ones(4), noise_a=np.ones(4))
+    whole = coherence_totals(cross, pa, pb)
+    parts = [coherence_totals(cross[s], pa[s], pb[s]) for s in (slice(0, 12), slice(12, None))]
+    for k in range(2):  # receiver and source pair totals pool by adding
+        np.testing.assert_allclose(parts[0][k] + parts[1][k], whole[k], rtol=1e-13)
+    # no coherent energy: the floor, finite; no energy at all: NaN (nothing measured)
+    got = noise_to_signal(np.array([0.0, 0.0, 2.0]), np.array([1.0, 0.0, 2.0]))
+    assert got[0] == pytest.approx(1 / RHO_FLOOR - 1) and np.isnan(got[1]) and got[2] == 0.0
+    with pytest.raises(ConfigError, match=r"cross \(30, 4\), power_a \(30, 3\)"):
+        coherence_totals(cross, pa[:, :3], pb)
+    with pytest.raises(ConfigError, match=r"coherent \(4,\) and total \(3,\)"):
+        noise_to_signal(whole[0], whole[1][:3])
