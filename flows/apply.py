@@ -31,6 +31,7 @@ from descatter.tasks.config import SurveyConfig
 from descatter.tasks.correction import (
     apply_correction, band_to_full_grid, correction_n_fft, filter_spectra, grid_band_weight, trace_correction,
 )
+from descatter.tasks.correction import prewhitening_spectrum
 from descatter.tasks.station_filters import filter_change
 from descatter.tasks.trace_qc import usable_traces
 
@@ -65,8 +66,10 @@ def correct_traces(sol: dict, attrs: dict, settings: dict, traces: np.ndarray, s
     s_grid = _station_grid(sol, "source", us, **common)
     r_grid = _station_grid(sol, "receiver", ur, **common)
     weight = grid_band_weight(band_index=band_index, n_rfft=n_fft // 2 + 1, taper=settings["taper_bins"])
+    spectrum = settings.get("prewhitening_spectrum")  # per frequency on this grid, or None: one fraction
+    prewhitening = settings["prewhitening"] if spectrum is None else np.asarray(spectrum, np.float64)
     correction = trace_correction(s_grid, r_grid, s_inv.reshape(-1), r_inv.reshape(-1), mode=settings["mode"],
-                                  prewhitening=settings["prewhitening"], band_weight=weight)
+                                  prewhitening=prewhitening, band_weight=weight)
     return apply_correction(traces, correction, n_fft=n_fft, passthrough=passthrough)
 
 
@@ -134,11 +137,13 @@ def apply_chunk(store_path: str, swath: str, chunk: int, start: int, stop: int, 
 
 
 def changed_stations(store: SurveyStore, solutions: list[str], current: str, new: dict, *,
-                     tolerance: float) -> dict[int, tuple[np.ndarray, np.ndarray]]:
+                     tolerance: float, measured: bool = False) -> dict[int, tuple[np.ndarray, np.ndarray]]:
     """For each earlier solution in ``solutions`` (by index): which source and
     receiver stations' filters differ from the ``new`` solution's by more than
     ``tolerance`` (relative RMS; identity status changing counts as changed).
-    Solutions no longer in the store are left out (their rows are redone)."""
+    With a ``measured`` prewhitening, a noise-to-signal spectrum that moved by
+    more than the tolerance changes every station. Solutions no longer in the
+    store are left out (their rows are redone)."""
     from descatter.storage.estimation import list_solutions
 
     present = set(list_solutions(store))
@@ -154,12 +159,36 @@ def changed_stations(store: SurveyStore, solutions: list[str], current: str, new
             n_old = len(old[f"{kind}_identity"])
             flip[:n_old] = old[f"{kind}_identity"] != new[f"{kind}_identity"][:n_old]
             masks.append((change > tolerance) | flip)
+        if measured and _noise_moved(store, sid, new, tolerance):
+            masks = [np.ones_like(m) for m in masks]
         out[u] = (masks[0], masks[1])
     return out
 
 
+def _noise_moved(store: SurveyStore, old_sid: str, new: dict, tolerance: float) -> bool:
+    """Whether the measured noise-to-signal spectrum (which sets a measured
+    prewhitening) differs between two solutions by more than ``tolerance``."""
+    try:
+        _, old, _ = read_solution(store, old_sid, names=("noise_to_signal",))
+    except KeyError:
+        return True  # estimated before the noise was measured: corrected another way
+    a, b = old["noise_to_signal"], new.get("noise_to_signal")
+    if b is None or a.shape != b.shape:
+        return True
+    return float(np.linalg.norm(b - a) / max(np.linalg.norm(a), 1e-30)) > tolerance
+
+
 def correction_settings(store: SurveyStore, solution_id: str, attrs: dict, sol: dict, config: SurveyConfig) -> dict:
-    """Plain numbers the chunk tasks need, also recorded with the output."""
+    """Plain numbers the chunk tasks need, also recorded with the output.
+
+    ``prewhitening_mode`` is the mode in effect: ``measured`` puts the
+    per-frequency prewhitening on the correction grid in
+    ``prewhitening_spectrum`` (a list; ``prewhitening`` then holds its median
+    over the band, for display); ``fixed`` leaves it None and corrects with
+    the one fraction ``prewhitening``. A solution estimated before the noise
+    level was measured (no finite ``noise_to_signal``) falls back to the fixed
+    fraction, with a message in ``warnings`` and in the log.
+    """
     dt = attrs["dt_s"]
     n_taps = sol["source_filter"].shape[1]
     n_fft = correction_n_fft(store.n_samples, filter_samples=2 * n_taps)
@@ -167,12 +196,28 @@ def correction_settings(store: SurveyStore, solution_id: str, attrs: dict, sol: 
     lo, hi = attrs["config"]["analysis"]["band_hz"]
     band_index = np.flatnonzero((f >= lo) & (f <= hi))
     c = config.correction
+    pw_mode, prewhitening, spectrum, warnings = "fixed", c.prewhitening, None, []
+    if c.mode == "full" and c.prewhitening_mode == "measured":
+        nu = sol.get("noise_to_signal")
+        if nu is not None and len(nu) and np.all(np.isfinite(nu)) and len(band_index):
+            p = prewhitening_spectrum(nu, band_hz=sol["freq_hz"], grid_hz=f, scale=c.prewhitening_scale)
+            pw_mode, prewhitening, spectrum = "measured", float(np.median(p[band_index])), p.tolist()
+        else:
+            # no solution id in the message: it is part of the settings, which must not change per solution
+            warnings.append(
+                "the solution carries no measured noise-to-signal ratio (estimated by an older version, or no pair "
+                f"energy at some band frequency): correcting with the fixed prewhitening {c.prewhitening:g} of the "
+                "mean in-band power instead of correction.prewhitening_mode = 'measured'; run 'descatter estimate' "
+                "again for the measured one")
+            log.warning("solution %s: %s", solution_id, warnings[-1])
     return {
-        "solution": solution_id, "mode": c.mode, "prewhitening": c.prewhitening,
+        "solution": solution_id, "mode": c.mode, "prewhitening": prewhitening,
+        "prewhitening_mode": pw_mode, "prewhitening_scale": None if spectrum is None else c.prewhitening_scale,
+        "prewhitening_spectrum": spectrum,
         "band_hz": [lo, hi], "band_taper_hz": c.band_taper_hz,
         "taper_bins": int(round(c.band_taper_hz / (f[1] - f[0]))), "n_fft": int(n_fft),
         "band_index": band_index.tolist(), "lead_s": attrs["config"]["estimate"]["filter_lead_s"],
-        "exclude_bits": int(config.qc.exclude_bits()),
+        "exclude_bits": int(config.qc.exclude_bits()), "warnings": warnings,
     }
 
 
@@ -194,8 +239,14 @@ def apply_solution(store_path: str | Path, config: SurveyConfig, *, client, solu
         tolerance = config.correction.reapply_tolerance
         records = store.manifest()
         futures = []
-        # the solution is not part of the fingerprint: a new one re-corrects only what it changes
-        fixed = {k: v for k, v in settings.items() if k != "solution"}
+        # what comes from the solution is not part of the fingerprint (its filters, and a measured
+        # prewhitening): a new solution re-corrects only what it changes
+        per_solution = {"solution", "prewhitening_spectrum", "warnings"}
+        if settings["prewhitening_mode"] == "measured":
+            per_solution.add("prewhitening")
+        fixed = {k: v for k, v in settings.items() if k not in per_solution}
+        for w in settings["warnings"]:
+            runlog.write(STAGE, "warning", message=w)
         for rec in records:
             fp = hashlib.blake2b(json.dumps({"v": STAGE_VERSION, "swath": rec.fingerprint, **fixed},
                                             sort_keys=True).encode(), digest_size=16).hexdigest()
@@ -205,7 +256,8 @@ def apply_solution(store_path: str | Path, config: SurveyConfig, *, client, solu
                 Checkpoints(store.path, STAGE, rec.name, fp).clear()
             index, used = corrected_solution_index(store, rec.name, sid)
             mark_corrected_solution(store, rec.name, None)
-            changed = changed_stations(store, used, sid, sol, tolerance=tolerance)
+            changed = changed_stations(store, used, sid, sol, tolerance=tolerance,
+                                       measured=settings["prewhitening_mode"] == "measured")
             changed_f = client.scatter(changed) if changed else {}
             for chunk, (a, b) in enumerate(rec.chunk_bounds()):
                 futures.append(client.submit(apply_chunk, str(store.path), rec.name, chunk, a, b, sid, index,
@@ -233,4 +285,5 @@ def apply_solution(store_path: str | Path, config: SurveyConfig, *, client, solu
         runlog.write(STAGE, "end", solution=sid, traces=total, recomputed=recomputed, passed_through=passed,
                      seconds=round(seconds, 3))
         return {"solution": sid, "traces": total, "recomputed": recomputed, "passed_through": passed,
-                "resumed_chunks": resumed, "seconds": seconds, "settings": settings}
+                "resumed_chunks": resumed, "seconds": seconds, "settings": settings,
+                "warnings": settings["warnings"]}

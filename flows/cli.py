@@ -60,6 +60,17 @@ class ConsoleLogHandler(logging.Handler):
             self.handleError(record)
 
 
+CLUSTER_HELP = ("local, threads, tcp://HOST:PORT, or a cluster profile: a name in deploy/clusters "
+                "(slurm, pbs, kubernetes, scheduler) or a path to a .toml")
+
+
+def _kept(recomputed: int, traces: int) -> str:
+    if recomputed >= traces:
+        return ""
+    return (f"; {traces - recomputed} kept their correction (their filters moved less than "
+            "correction.reapply_tolerance, or the chunk was already done)")
+
+
 def _opt_path(path: Optional[Path]) -> Optional[str]:
     """A flow parameter: Prefect records parameters as JSON, so paths go as text."""
     return None if path is None else str(path)
@@ -138,9 +149,10 @@ def synth(
 def ingest(
     store: Path = typer.Argument(..., help="survey store (created if missing)"),
     files: List[Path] = typer.Argument(..., help="SEG-Y files, one swath each (named by file stem)"),
-    config: Optional[Path] = typer.Option(None, "--config", help="survey config (TOML)"),
+    config: Optional[Path] = typer.Option(
+        None, "--config", help="survey config (TOML); default: the one kept in the store, or the defaults for a new store"),
     workers: Optional[int] = typer.Option(None, "--workers", help="local worker processes (default: one per core)"),
-    cluster: str = typer.Option("local", "--cluster", help="local, threads, or tcp://HOST:PORT"),
+    cluster: str = typer.Option("local", "--cluster", help=CLUSTER_HELP),
     memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB"),
 ) -> None:
     """Add SEG-Y swaths to a survey store (a committed file is skipped).
@@ -180,7 +192,7 @@ def estimate(
     store: Path = typer.Argument(..., help="survey store"),
     config: Optional[Path] = typer.Option(None, "--config", help="survey config (default: the one kept at ingest)"),
     workers: Optional[int] = typer.Option(None, "--workers", help="local worker processes (default: one per core)"),
-    cluster: str = typer.Option("local", "--cluster", help="local, threads, or tcp://HOST:PORT"),
+    cluster: str = typer.Option("local", "--cluster", help=CLUSTER_HELP),
     memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB"),
 ) -> None:
     """Measure every station's near-surface filter: spectra, pair statistics, global solve.
@@ -218,7 +230,7 @@ def apply(
     config: Optional[Path] = typer.Option(None, "--config", help="survey config (default: the one kept at ingest)"),
     prewhitening: Optional[float] = typer.Option(None, "--prewhitening", help="fraction of mean in-band power"),
     workers: Optional[int] = typer.Option(None, "--workers", help="local worker processes (default: one per core)"),
-    cluster: str = typer.Option("local", "--cluster", help="local, threads, or tcp://HOST:PORT"),
+    cluster: str = typer.Option("local", "--cluster", help=CLUSTER_HELP),
     memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB"),
 ) -> None:
     """Apply a solution's correction filters to every trace (into each swath's 'corrected').
@@ -234,9 +246,11 @@ def apply(
         result = apply_flow(str(store), _opt_path(config), solution=solution, cluster=cluster, workers=workers,
                             memory_limit=memory_limit, mode=mode, prewhitening=prewhitening,
                             progress=lambda stage, done, total: bar.update(task, completed=done, total=total))
-    console.print(f"corrected {result['traces']} traces with solution {result['solution']} "
-                  f"({result['settings']['mode']}, prewhitening {result['settings']['prewhitening']:g}) "
-                  f"in {result['seconds']:.1f} s; {result['passed_through']} passed through unchanged")
+    console.print(f"corrected {result['recomputed']} of {result['traces']} traces with solution "
+                  f"{result['solution']} ({result['settings']['mode']}, {result['settings']['prewhitening_mode']} "
+                  f"prewhitening {result['settings']['prewhitening']:g}) in {result['seconds']:.1f} s; "
+                  f"{result['passed_through']} passed through unchanged"
+                  f"{_kept(result['recomputed'], result['traces'])}")
 
 
 @app.command()
@@ -363,8 +377,9 @@ def export(
 def run(
     store: Path = typer.Argument(..., help="survey store (created if missing)"),
     files: List[Path] = typer.Argument(..., help="SEG-Y files, one swath each"),
-    config: Optional[Path] = typer.Option(None, "--config", help="survey config (TOML)"),
-    cluster: str = typer.Option("local", "--cluster", help="local, threads, or tcp://HOST:PORT"),
+    config: Optional[Path] = typer.Option(
+        None, "--config", help="survey config (TOML); default: the one kept in the store, or the defaults for a new store"),
+    cluster: str = typer.Option("local", "--cluster", help=CLUSTER_HELP),
     workers: Optional[int] = typer.Option(None, "--workers", help="local worker processes (default: one per core)"),
     memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB"),
 ) -> None:
@@ -374,7 +389,50 @@ def run(
     out = run_flow(str(store), [str(f) for f in files], _opt_path(config), cluster=cluster,
                    workers=workers, memory_limit=memory_limit)
     console.print(f"ingest: added {out['ingest']['added']}, skipped {out['ingest']['skipped']}; "
-                  f"solution {out['estimate']['solution']}; corrected {out['apply']['traces']} traces")
+                  f"solution {out['estimate']['solution']}; corrected {out['apply']['recomputed']} of "
+                  f"{out['apply']['traces']} traces{_kept(out['apply']['recomputed'], out['apply']['traces'])}")
+
+
+@app.command()
+def swath(
+    store: Path = typer.Argument(..., help="survey store"),
+    action: str = typer.Argument(..., help="remove or replace"),
+    name: str = typer.Argument(..., help="the swath (a file stem, e.g. line03)"),
+    file: Optional[Path] = typer.Argument(None, help="replace: the new SEG-Y file, named NAME.sgy"),
+    config: Optional[Path] = typer.Option(None, "--config", help="survey config (default: the one kept at ingest)"),
+    cluster: str = typer.Option("local", "--cluster", help=CLUSTER_HELP),
+    workers: Optional[int] = typer.Option(None, "--workers", help="local worker processes (default: one per core)"),
+    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB"),
+) -> None:
+    """Remove a swath, or replace it by a new file; then solve again and re-apply where filters changed.
+
+    The store keeps nothing of a removed swath but its run-log records.
+    Runs as the Prefect flow descatter-swath.
+    """
+    if action not in ("remove", "replace"):
+        raise DescatterError(f"swath action {action!r}: expected 'remove' or 'replace'")
+    if action == "replace" and file is None:
+        raise DescatterError(f"swath replace {name}: give the new SEG-Y file ({name}.sgy)")
+    if action == "remove" and file is not None:
+        raise DescatterError(f"swath remove {name} takes no file (did you mean 'replace'?)")
+    from descatter.storage.store import SurveyStore
+
+    SurveyStore.open(store)  # a bad store fails here, before Prefect starts
+    from descatter.flows.service import swath_flow
+
+    out = swath_flow(str(store), action, name, _opt_path(file), _opt_path(config), cluster=cluster,
+                     workers=workers, memory_limit=memory_limit)
+    r = out["removed"]
+    what = f"removed {name} ({r['traces']} traces, {len(r['stats_keys'])} statistics keys)" if r["was_committed"] \
+        else f"removed the leftovers of {name}"
+    if out["added"]:
+        what += f"; added {', '.join(out['added'])}"
+    if out["solution"]:
+        what += (f"; solution {out['solution']}; corrected {out['recomputed']} of {out['traces']} traces"
+                 f"{_kept(out['recomputed'], out['traces'])}")
+    else:
+        what += "; no swath left"
+    console.print(what)
 
 
 @app.command()
@@ -413,7 +471,7 @@ def lock(
 def demo(
     out: Path = typer.Argument(Path("demo-run"), help="folder for the demo survey, store and outputs"),
     size: str = typer.Option("demo", help="tiny or demo"),
-    cluster: str = typer.Option("local", "--cluster", help="local, threads, or tcp://HOST:PORT"),
+    cluster: str = typer.Option("local", "--cluster", help=CLUSTER_HELP),
     workers: Optional[int] = typer.Option(None, "--workers", help="local worker processes (default: one per core)"),
     memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB"),
 ) -> None:

@@ -43,6 +43,7 @@ from descatter.flows.ingest import ingest_swaths  # noqa: E402
 from descatter.flows.solve import estimate_survey  # noqa: E402
 from descatter.storage.config_file import config_for_store, load_config  # noqa: E402
 from descatter.tasks.config import SurveyConfig  # noqa: E402
+from descatter.storage.lock import StoreLock  # noqa: E402
 from descatter.tasks.errors import DescatterError  # noqa: E402
 
 # (part, done, total): a swath at ingest (traces); spectra, statistics, solve
@@ -88,17 +89,31 @@ def correction_config(store: str | Path, config_path: str | Path | None, *, mode
     try:
         if mode is not None:
             cfg.correction.mode = mode
-        if prewhitening is not None:
+        if prewhitening is not None:  # a fraction given by hand: the fixed prewhitening
             cfg.correction.prewhitening = prewhitening
+            cfg.correction.prewhitening_mode = "fixed"
     except ValueError as exc:
         raise DescatterError(f"bad option: {exc}") from None
     return cfg
 
 
+def _ingest_config(store: str, config_path: str | None) -> SurveyConfig:
+    """The config file given; without one, the config kept in an existing
+    store (adding swaths must not reset it to the defaults), else the defaults."""
+    from descatter.tasks.errors import InputNotFoundError
+
+    if config_path is None:
+        try:
+            return config_for_store(store, None)
+        except InputNotFoundError:  # no store yet: it is created with the defaults
+            pass
+    return load_config(config_path)
+
+
 @task(name="ingest-stage", cache_policy=None)
 def ingest_stage(store: str, files: list[str], config_path: str | None, client,
                  progress: Progress | None = None) -> dict:
-    cfg = load_config(config_path)
+    cfg = _ingest_config(store, config_path)
     report = ingest_swaths(store, files, cfg, client=client, progress=_stage_progress("ingest", progress))
     for w in report.warnings:
         get_run_logger().warning(w)
@@ -123,8 +138,11 @@ def apply_stage(store: str, config_path: str | None, client, solution: str | Non
                 progress: Progress | None = None) -> dict:
     cfg = correction_config(store, config_path, mode=mode, prewhitening=prewhitening)
     result = apply_solution(store, cfg, client=client, solution=solution, progress=_stage_progress("apply", progress))
-    out = {k: result[k] for k in ("solution", "traces", "passed_through", "resumed_chunks")}
-    out["settings"] = {k: result["settings"][k] for k in ("mode", "prewhitening")}
+    out = {k: result[k] for k in ("solution", "traces", "recomputed", "passed_through", "resumed_chunks")}
+    out["settings"] = {k: result["settings"][k] for k in ("mode", "prewhitening", "prewhitening_mode")}
+    out["warnings"] = result["warnings"]
+    for w in result["warnings"]:
+        get_run_logger().warning(w)
     out["seconds"] = round(result["seconds"], 3)
     return out
 
@@ -169,10 +187,50 @@ def apply_flow(store: str, config: Optional[str] = None, solution: Optional[str]
 def run_flow(store: str, files: list[str], config: Optional[str] = None, cluster: str = "local",
              workers: Optional[int] = None, memory_limit: Optional[str] = None,
              progress: Optional[Progress] = None) -> dict:
-    """ingest -> estimate -> apply, on one Dask cluster."""
-    with dask_client(cluster, workers=workers, memory_limit=memory_limit) as client:
+    """ingest -> estimate -> apply, on one Dask cluster, holding the store's
+    lock throughout (no other writer runs between the stages). Files already
+    in the store are skipped, so a rerun with new swaths is incremental."""
+    with dask_client(cluster, workers=workers, memory_limit=memory_limit) as client, \
+            StoreLock(store, command="run"):
         _announce(client)
         out = {"ingest": ingest_stage(store, [str(Path(f)) for f in files], config, client, progress)}
         out["estimate"] = estimate_stage(store, config, client, progress)
         out["apply"] = apply_stage(store, config, client, progress=progress)
         return out
+
+
+@task(name="swath-stage", cache_policy=None)
+def swath_stage(store: str, action: str, name: str, file: Optional[str], config_path: Optional[str], client,
+                progress: Optional[Progress] = None) -> dict:
+    from descatter.flows.swaths import remove_swath_and_update, replace_swath_and_update
+
+    cfg = config_for_store(store, config_path)
+    forward = _stage_progress(action, progress)
+    if action == "remove":
+        out = remove_swath_and_update(store, name, cfg, client=client, progress=forward)
+    else:
+        out = replace_swath_and_update(store, name, file, cfg, client=client, progress=forward)
+    est, app = out.get("estimate"), out.get("apply")
+    return {
+        "removed": out["removed"],
+        "added": out["ingest"].added if "ingest" in out else [],
+        "solution": est["solution"] if est else None,
+        "warnings": est["warnings"] if est else [],
+        "recomputed": app["recomputed"] if app else 0,
+        "traces": app["traces"] if app else 0,
+    }
+
+
+@flow(name="descatter-swath")
+def swath_flow(store: str, action: str, name: str, file: Optional[str] = None, config: Optional[str] = None,
+               cluster: str = "local", workers: Optional[int] = None, memory_limit: Optional[str] = None,
+               progress: Optional[Progress] = None) -> dict:
+    """Remove a swath, or replace it by a new file (``action`` remove or
+    replace), then solve and re-apply where station filters changed."""
+    if action not in ("remove", "replace"):
+        raise DescatterError(f"swath action {action!r}: expected 'remove' or 'replace'")
+    if (action == "replace") != (file is not None):
+        raise DescatterError("swath replace takes the new SEG-Y file; swath remove takes none")
+    with dask_client(cluster, workers=workers, memory_limit=memory_limit) as client:
+        _announce(client)
+        return swath_stage(store, action, name, file, config, client, progress)

@@ -179,3 +179,30 @@ def test_replace_is_remove_and_add_and_refuses_a_bad_file_first(five, all_at_onc
     s = SurveyStore.open(store)
     assert s.swath_names() == ["line01", "line02", "line04", "line05", "line03"]
     assert s.swath("line03").n_traces == SurveyStore.open(all_at_once).swath("line03").n_traces
+
+
+def test_swath_command_and_an_incremental_run_through_the_flows(prefect_harness, five, all_at_once, tmp_path):
+    from typer.testing import CliRunner
+
+    from descatter.flows.cli import app
+
+    files, _ = five
+    store = tmp_path / "s.zarr"
+    shutil.copytree(all_at_once, store)
+    runner = CliRunner()
+    res = runner.invoke(app, ["swath", str(store), "remove", "line05", "--workers", "1"], catch_exceptions=False)
+    assert res.exit_code == 0, res.output
+    assert "removed line05" in res.stdout and "corrected" in res.stdout
+    assert SurveyStore.open(store).swath_names() == ["line01", "line02", "line03", "line04"]
+    # the new swath arrives: run is incremental (the committed four are skipped)
+    res = runner.invoke(app, ["run", str(store), *map(str, files), "--workers", "1"], catch_exceptions=False)
+    assert res.exit_code == 0, res.output
+    assert "added ['line05']" in res.stdout and "skipped ['line01', 'line02', 'line03', 'line04']" in res.stdout
+    _, want, _ = read_solution(SurveyStore.open(all_at_once))
+    _, got, _ = read_solution(SurveyStore.open(store))
+    assert np.array_equal(want["receiver_filter"], got["receiver_filter"])
+    # bad arguments are refused before anything starts
+    with pytest.raises(DescatterError, match="expected 'remove' or 'replace'"):
+        runner.invoke(app, ["swath", str(store), "drop", "line05"], catch_exceptions=False)
+    with pytest.raises(DescatterError, match="give the new SEG-Y file"):
+        runner.invoke(app, ["swath", str(store), "replace", "line05"], catch_exceptions=False)
