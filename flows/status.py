@@ -50,7 +50,10 @@ def stage_status(store_path: str | Path) -> list[dict]:
         eta = (total - done) / rate if (rate and total and not ended) else None
         out.append({"stage": stage, "run": run, "state": state, "done": done, "total": total, "unit": unit,
                     "started": start["time"], "elapsed_s": elapsed, "rate": rate, "eta_s": eta,
-                    "resumed": sum(bool(r.get("resumed")) for r in batches),
+                    # finished by an earlier run: chunks flagged in their batch records; statistics
+                    # jobs are not resubmitted at all, and their start record counts them
+                    "resumed": sum(bool(r.get("resumed")) for r in batches) + int(
+                        start.get("resumed", 0) if stage == "stats" else 0),
                     "warnings": warnings[-3:], "errors": errors[-3:]})
     return out
 

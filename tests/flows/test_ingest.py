@@ -169,7 +169,7 @@ def test_other_sampling_refused(n_samples, interval_us, match, tiny_survey, inge
     assert _tree_digest(store) == before
 
 
-def test_killed_ingest_leaves_store_as_before_and_rerun_completes(tiny_survey, ingested, tmp_path):
+def test_killed_ingest_leaves_store_as_before_and_rerun_completes(prefect_harness, tiny_survey, ingested, tmp_path):
     store = tmp_path / "s.zarr"
     lines = _lines(tiny_survey)
     cfg_path = tmp_path / "c.toml"
