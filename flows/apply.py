@@ -34,6 +34,7 @@ from descatter.tasks.correction import (
 from descatter.tasks.correction import prewhitening_spectrum
 from descatter.tasks.station_filters import filter_change
 from descatter.tasks.trace_qc import usable_traces
+from descatter.tasks.wavelets import band_taper
 
 log = logging.getLogger(__name__)
 
@@ -68,8 +69,10 @@ def correct_traces(sol: dict, attrs: dict, settings: dict, traces: np.ndarray, s
     weight = grid_band_weight(band_index=band_index, n_rfft=n_fft // 2 + 1, taper=settings["taper_bins"])
     spectrum = settings.get("prewhitening_spectrum")  # per frequency on this grid, or None: one fraction
     prewhitening = settings["prewhitening"] if spectrum is None else np.asarray(spectrum, np.float64)
+    corners = settings.get("shaping_hz")
+    shaping = band_taper(np.fft.rfftfreq(n_fft, dt), corners_hz=tuple(corners)) if corners else None
     correction = trace_correction(s_grid, r_grid, s_inv.reshape(-1), r_inv.reshape(-1), mode=settings["mode"],
-                                  prewhitening=prewhitening, band_weight=weight)
+                                  prewhitening=prewhitening, band_weight=weight, shaping=shaping)
     return apply_correction(traces, correction, n_fft=n_fft, passthrough=passthrough)
 
 
@@ -214,7 +217,7 @@ def correction_settings(store: SurveyStore, solution_id: str, attrs: dict, sol: 
         "solution": solution_id, "mode": c.mode, "prewhitening": prewhitening,
         "prewhitening_mode": pw_mode, "prewhitening_scale": None if spectrum is None else c.prewhitening_scale,
         "prewhitening_spectrum": spectrum,
-        "band_hz": [lo, hi], "band_taper_hz": c.band_taper_hz,
+        "band_hz": [lo, hi], "band_taper_hz": c.band_taper_hz, "shaping_hz": list(c.shaping_hz),
         "taper_bins": int(round(c.band_taper_hz / (f[1] - f[0]))), "n_fft": int(n_fft),
         "band_index": band_index.tolist(), "lead_s": attrs["config"]["estimate"]["filter_lead_s"],
         "exclude_bits": int(config.qc.exclude_bits()), "warnings": warnings,

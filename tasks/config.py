@@ -208,12 +208,25 @@ class CorrectionConfig(_Section):
         5.0, ge=0.0, description="transition from the correction in the band to identity outside it",
         json_schema_extra=_unit("Hz"),
     )
+    shaping_hz: tuple[float, ...] = Field(
+        (), description="optional target band [f1, f2, f3, f4]: the corrected traces are shaped to this trapezoid "
+                        "(0 below f1, raised-cosine flanks, 1 from f2 to f3, 0 above f4); empty: no shaping",
+        json_schema_extra=_unit("Hz"),
+    )
     reapply_tolerance: float = Field(
         0.02, ge=0.0,
         description="a new solution re-corrects only traces whose source or receiver filter changed by more than "
                     "this relative RMS (|f_new - f_applied| / |f_applied|); 0 re-corrects every changed filter",
         json_schema_extra=_unit("fraction"),
     )
+
+
+    @model_validator(mode="after")
+    def _check_shaping(self):
+        t = self.shaping_hz
+        if t and not (len(t) == 4 and 0 <= t[0] < t[1] <= t[2] < t[3]):
+            raise ValueError(f"correction.shaping_hz = {list(t)}: expected [] or four corners f1 < f2 <= f3 < f4 (Hz)")
+        return self
 
 
 class SurveyConfig(_Section):

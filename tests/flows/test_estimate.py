@@ -207,6 +207,36 @@ def test_apply_corrects_passes_dead_traces_and_exports(scatter, client, tmp_path
     assert s.array("line01", "corrected").attrs["mode"] == "full"
 
 
+def test_apply_shapes_to_a_target_band(scatter, client, tmp_path):
+    import shutil
+
+    from descatter.flows.apply import apply_solution
+    from descatter.tasks.wavelets import band_taper
+
+    survey, store_src, _ = scatter
+    plain, shaped = tmp_path / "plain.zarr", tmp_path / "shaped.zarr"
+    shutil.copytree(store_src, plain)
+    shutil.copytree(store_src, shaped)
+    cfg = load_config(survey / "survey.toml")
+    apply_solution(plain, cfg, client=client)
+    corners = (10.0, 15.0, 30.0, 40.0)
+    cfg.correction.shaping_hz = corners
+    settings = apply_solution(shaped, cfg, client=client)["settings"]
+    a = SurveyStore.open(plain).array("line01", "corrected")[:64].astype(np.float64)
+    b = SurveyStore.open(shaped).array("line01", "corrected")[:64].astype(np.float64)
+    # shaping multiplies the correction by the trapezoid T(f) on the correction's FFT grid: the shaped
+    # traces are the plain ones filtered by T (numpy.fft as the reference convolution)
+    n_fft = settings["n_fft"]
+    t = band_taper(np.fft.rfftfreq(n_fft, SurveyStore.open(plain).sample_interval_s), corners_hz=corners)
+    want = np.fft.irfft(np.fft.rfft(a, n_fft) * t, n_fft)[:, : a.shape[1]]
+    live = np.abs(a).max(axis=1) > 0
+    err = np.linalg.norm(b - want, axis=1)[live] / np.linalg.norm(want, axis=1)[live]
+    assert np.median(err) < 0.05
+    f = np.fft.rfftfreq(a.shape[1], SurveyStore.open(plain).sample_interval_s)
+    power = np.abs(np.fft.rfft(b, axis=1)) ** 2
+    assert power[:, f > 50].sum() < 1e-3 * power.sum()  # nothing left above f4
+
+
 @pytest.mark.slow
 def test_demo_survey_reaches_the_method_targets(client, tmp_path_factory, tmp_path):
     """On the demo-size scattering survey (100 shots, seed 7): relative filters
