@@ -12,7 +12,11 @@ from pathlib import Path
 import pytest
 
 sys.path.insert(0, str(Path(__file__).parent))
+import bench_estimate  # noqa: E402
 import bench_ingest  # noqa: E402
+import bench_job  # noqa: E402
+import bench_overhead  # noqa: E402
+import bench_scaling  # noqa: E402
 import bench_solve  # noqa: E402
 
 
@@ -40,3 +44,94 @@ def test_solve_benchmark_prints_growth_at_tiny_size():
 @pytest.mark.benchmark
 def test_solve_benchmark_full_size():
     bench_solve.run()
+
+
+def test_estimate_benchmark_prints_ratios_at_tiny_size():
+    buf = io.StringIO()
+    r = bench_estimate.run(n_traces=None, size="tiny", workers=1, calls=1, repeat=1, out=buf)
+    text = buf.getvalue()
+    assert "estimation / FFT floor" in text and "spectra_chunk" in text and "receiver_pairs_task" in text
+    assert all(wall > 0 and cpu >= 0 for wall, cpu in r["rows"].values())
+    # the chain computes the same FFTs as the floor and more (NMO, reads, writes, the sums)
+    assert r["ratio"] > 1 and r["cpu_ratio"] > 1 and r["kernels"]["spectra"][0] > 0
+    # one spectra task per chunk: the tiny survey's 3 swaths of 768 traces, chunks of 1000
+    assert r["estimation"]["tasks"]["spectra"]["calls"] == 3
+    assert r["traces"] == 2304 and r["n_fft"] >= r["window_samples"]
+
+
+@pytest.mark.benchmark
+def test_estimate_benchmark_full_size():
+    bench_estimate.run()
+
+
+def test_job_benchmark_outputs_agree_at_tiny_size():
+    buf = io.StringIO()
+    r = bench_job.run(n_traces=None, size="tiny", workers=1, profile=True, out=buf)
+    text = buf.getvalue()
+    assert "CPU ratio" in text and "outputs agree: yes" in text
+    assert "pieces of apply_chunk" in text and "driver profile, estimate" in text
+    a = r["agreement"]
+    assert a["agree"] and a["traces"] == 2304 and a["compared"] > 2000
+    assert a["min_corr"] >= bench_job.CORRELATION_TOLERANCE
+    assert all(row["descatter"] > 0 and row["single"] > 0 for row in r["rows"].values())
+    m = r["memory"]
+    assert m["single_peak_rss_mb"] >= m["single_idle_mb"] > 0 and m["worker_peak_rss_mb"] > 0
+
+
+@pytest.mark.benchmark
+def test_job_benchmark_full_size():
+    bench_job.run()
+
+
+def test_scaling_benchmark_prints_growth_at_tiny_size():
+    buf = io.StringIO()
+    rows = bench_scaling.run(sizes=(600, 1200), workers=1, fresh_cluster=False, measure_synth=False, out=buf)
+    text = buf.getvalue()
+    assert "growth exponent" in text and "us/trace" in text and "disk MB" in text
+    assert len(rows) == 2
+    for r in rows.values():
+        assert all(r["seconds"][k] > 0 and r["cpu"][k] > 0 for k in bench_scaling.STAGES)
+        assert all(r["peaks"][k]["worker_mb"] > 0 for k in bench_scaling.STAGES)
+        # the stored traces hold the samples (blosc lz4 gains about 1.14x on band-limited noise, DESIGN.md 6)
+        raw_mb = r["traces"] * r["synth"]["n_samples"] * 4 / 1e6
+        assert 0.5 * raw_mb < r["disk"]["store_traces"] < 1.1 * raw_mb
+
+
+@pytest.mark.benchmark
+def test_scaling_benchmark_full_size():
+    bench_scaling.run()
+
+
+@pytest.mark.slow
+def test_overhead_benchmark_prints_fractions_at_tiny_size():
+    buf = io.StringIO()
+    r = bench_overhead.run(n_traces=None, size="tiny", workers=1, out=buf)
+    text = buf.getvalue()
+    assert "no Prefect" in text and "fraction" in text
+    first, rerun = r["runs"]["first run"], r["runs"]["rerun, all done"]
+    assert 0 < first["fraction"] < 1 and first["summed"] > 0
+    # a rerun skips every chunk: no chunk seconds, all of its wall is overhead
+    assert rerun["summed"] == 0 and rerun["fraction"] == pytest.approx(1.0)
+    assert rerun["wall"] < first["wall"]
+
+
+@pytest.mark.benchmark
+def test_overhead_benchmark_full_size():
+    bench_overhead.run()
+
+
+def test_incremental_benchmark_prints_its_ratio_at_tiny_size():
+    import bench_incremental
+
+    buf = io.StringIO()
+    rows = bench_incremental.run(n_traces=2500, n_swaths=3, n_new=1, workers=1, out=buf)
+    assert "incr/full" in buf.getvalue()
+    # the added swath's job took less than the whole job, and gave its solution
+    assert rows["same_solution"] and 0 < rows["incremental"]["ingest"] < rows["full"]["ingest"]
+
+
+@pytest.mark.benchmark
+def test_incremental_benchmark_full_size():
+    import bench_incremental
+
+    bench_incremental.run()
