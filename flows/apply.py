@@ -261,7 +261,7 @@ def apply_solution(store_path: str | Path, config: SurveyConfig, *, client, solu
             mark_corrected_solution(store, rec.name, None)
             changed = changed_stations(store, used, sid, sol, tolerance=tolerance,
                                        measured=settings["prewhitening_mode"] == "measured")
-            changed_f = client.scatter(changed) if changed else {}
+            changed_f = client.scatter(changed, hash=False) if changed else {}
             for chunk, (a, b) in enumerate(rec.chunk_bounds()):
                 futures.append(client.submit(apply_chunk, str(store.path), rec.name, chunk, a, b, sid, index,
                                              settings, fp, changed_f,

@@ -125,6 +125,14 @@ def log_power_task(store_path: str, swath: str, start: int, stop: int, source: n
     )
 
 
+def _traces_at(receivers: np.ndarray, *swaths: dict) -> np.ndarray:
+    """Receiver index of every live trace of the swaths at ``receivers``: the
+    labels that split cross-swath work into groups of about a target number
+    of traces (not of receivers, whose traces span both swaths)."""
+    return np.concatenate([g["receiver_index"][np.isin(g["receiver_index"], receivers) & g["live"]]
+                           for g in swaths])
+
+
 def _side(g: dict, mask: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Rows (live, in ``mask``), sources and receivers of one swath's traces."""
     rows = np.flatnonzero(mask & g["live"])
@@ -326,7 +334,9 @@ def run_statistics(store: SurveyStore, config: SurveyConfig, *, client, runlog: 
         ckpt = Checkpoints(store.path, "stats", rec.name, fp)
         wanted = []
         if not ckpt.is_done(0):
-            rp_f = client.scatter(rp)
+            # hash=False: equal objects scattered twice (empty pair sets of two swaths) would share one
+            # key, and releasing the first would cancel the tasks of the second
+            rp_f = client.scatter(rp, hash=False)
             parts = []
             for shots in _groups(g["shot"], est.shot_group_traces):
                 rows = np.flatnonzero(np.isin(g["shot"], shots) & g["live"])
@@ -336,7 +346,7 @@ def run_statistics(store: SurveyStore, config: SurveyConfig, *, client, runlog: 
         else:
             done_before.append((rec.name, "receiver_pairs"))
         if not ckpt.is_done(1):
-            sp_f = client.scatter(sp)
+            sp_f = client.scatter(sp, hash=False)
             parts = [client.submit(source_pairs_task, str(store.path), rec.name,
                                    *_side(g, np.isin(g["receiver_index"], recv)), sp_f, pure=False)
                      for recv in _groups(g["receiver_index"][g["receiver_index"] >= 0], est.shot_group_traces)]
@@ -372,11 +382,11 @@ def run_statistics(store: SurveyStore, config: SurveyConfig, *, client, runlog: 
                 report.stats_skipped.append(key)
                 done_before.append((key, "source_pairs"))
                 continue
-            bf = client.scatter(between)
+            bf = client.scatter(between, hash=False)
             parts = [client.submit(source_pairs_between_task, str(store.path), prev.name, rec.name,
                                    _side(gp, np.isin(gp["receiver_index"], recv)),
                                    _side(g, np.isin(g["receiver_index"], recv)), bf, pure=False)
-                     for recv in _groups(common, est.shot_group_traces)]
+                     for recv in _groups(_traces_at(common, gp, g), est.shot_group_traces)]
             jobs.append((key, "source_pairs", client.submit(write_stats_task, str(store.path), key, "source_pairs",
                                                             tree_sum(client, parts), fpx, pure=False)))
             report.stats_computed.append(key)

@@ -75,8 +75,8 @@ def _phases(client, pairs: PairSums, n_stations: int, method: str, initial: np.n
     blocks = [slice(a, min(a + FREQ_BLOCK, n_freq)) for a in range(0, n_freq, FREQ_BLOCK)]
     if client is None or len(blocks) == 1:
         return phase_sync(pairs.pairs, pairs.cross, weight, n_stations=n_stations, method=method, initial=initial)
-    p_f, c_f, w_f = client.scatter([pairs.pairs, pairs.cross, weight])
-    i_f = None if initial is None else client.scatter(initial)
+    p_f, c_f, w_f = client.scatter([pairs.pairs, pairs.cross, weight], hash=False)
+    i_f = None if initial is None else client.scatter(initial, hash=False)
     futures = [client.submit(phase_sync, p_f, c_f, w_f, n_stations=n_stations, method=method, columns=b,
                              initial=i_f, pure=False) for b in blocks]
     return concat_phase_solutions(client.gather(futures))

@@ -79,7 +79,9 @@ class IngestConfig(_Section):
     """How SEG-Y swaths become arrays in the store."""
 
     chunk_traces: int = Field(
-        1000, ge=16, le=1_000_000,
+        4000, ge=16, le=1_000_000,
+        # 4000 rather than 1000: per-chunk costs (zarr open, flags, task overhead) dominate small
+        # chunks; measured on 1e5 traces with groups of 16000, spectra + statistics 6.4 s -> 3.3 s
         description="traces per chunk of every per-trace array",
         json_schema_extra=_unit("traces"),
     )
@@ -158,7 +160,9 @@ class EstimateConfig(_Section):
     )
     offset_bin_m: float = Field(50.0, gt=0.0, description="offset bin of the amplitude solve's offset term",
                                 json_schema_extra=_unit("m"))
-    cmp_bin_m: float = Field(0.0, ge=0.0, description="CMP bin of the optional CMP term; 0 leaves it out",
+    cmp_bin_m: float = Field(0.0, ge=0.0, le=0.0,
+                             description="CMP bin of a CMP term in the amplitude solve; must be 0 for now (the "
+                                         "statistics do not yet carry survey-wide CMP bins)",
                              json_schema_extra=_unit("m"))
     min_pairs: int = Field(3, ge=1, description="stations with fewer pairs get the identity filter",
                            json_schema_extra=_unit("pairs"))
@@ -177,7 +181,8 @@ class EstimateConfig(_Section):
     filter_lead_s: float = Field(0.064, ge=0.0, description="filter time before zero (negative delays)",
                                  json_schema_extra=_unit("s"))
     shot_group_traces: int = Field(
-        4000, ge=100, description="traces per statistics task (whole shots or receivers)", json_schema_extra=_unit("traces"))
+        16000, ge=100, description="traces per statistics task (whole shots or receivers)",
+        json_schema_extra=_unit("traces"))
 
 
 class CorrectionConfig(_Section):

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import hashlib
 import os
+import re
 import shutil
 import struct
 import subprocess
@@ -173,7 +174,9 @@ def test_killed_ingest_leaves_store_as_before_and_rerun_completes(prefect_harnes
     store = tmp_path / "s.zarr"
     lines = _lines(tiny_survey)
     cfg_path = tmp_path / "c.toml"
-    cfg_path.write_text((tiny_survey / "survey.toml").read_text().replace("chunk_traces = 1000", "chunk_traces = 256"))
+    text = (tiny_survey / "survey.toml").read_text()
+    cfg_path.write_text(re.sub(r"chunk_traces = \d+", "chunk_traces = 256", text))
+    assert "chunk_traces = 256" in cfg_path.read_text()  # several chunks a swath, so the kill lands mid-swath
     cmd = [sys.executable, "-m", "descatter.flows.cli", "ingest", str(store), *map(str, lines),
            "--config", str(cfg_path), "--workers", "1"]
     env = {**os.environ, "DESCATTER_FAULT": "ingest:3"}
