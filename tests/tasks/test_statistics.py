@@ -88,3 +88,18 @@ def test_totals_of_pair_sets_add_up_and_edge_cases():
         coherence_totals(cross, pa[:, :3], pb)
     with pytest.raises(ConfigError, match=r"coherent \(4,\) and total \(3,\)"):
         noise_to_signal(whole[0], whole[1][:3])
+
+
+def test_merge_pairs_agrees_with_numpy_unique_on_rows():
+    from descatter.tasks.statistics import _merge_pairs
+
+    rng = np.random.default_rng(4)
+    a = np.unique(np.sort(rng.integers(0, 300, (500, 2)), axis=1), axis=0)
+    b = np.unique(np.sort(rng.integers(0, 300, (400, 2)), axis=1), axis=0)
+    union, ia, ib = _merge_pairs(a, b)
+    # reference: numpy.unique over rows (lexicographic), the definition of the merged table
+    ref, inv = np.unique(np.concatenate([a, b]), axis=0, return_inverse=True)
+    assert np.array_equal(union, ref) and union.dtype == np.int64
+    assert np.array_equal(ia, inv.reshape(-1)[: len(a)]) and np.array_equal(ib, inv.reshape(-1)[len(a):])
+    empty, ea, eb = _merge_pairs(np.zeros((0, 2), np.int64), np.zeros((0, 2), np.int64))
+    assert empty.shape == (0, 2) and ea.size == eb.size == 0
