@@ -139,12 +139,36 @@ def _side(g: dict, mask: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray
     return rows, g["source_index"][rows], g["receiver_index"][rows]
 
 
+@dataclass
+class Timed:
+    """A partial statistic with the seconds its tasks took (summed up the
+    tree), so the run log can account for the statistics stage."""
+
+    value: object
+    seconds: float
+
+
+def _timed(fn, *args) -> Timed:
+    t0 = time.perf_counter()
+    value = fn(*args)
+    return Timed(value, time.perf_counter() - t0)
+
+
 def add_parts(a, b):
-    return a + b
+    """One step of the tree sum: sums (or :class:`Timed` sums, seconds added)."""
+    if not isinstance(a, Timed) and not isinstance(b, Timed):
+        return a + b
+    t0 = time.perf_counter()
+    value = getattr(a, "value", a) + getattr(b, "value", b)
+    return Timed(value, getattr(a, "seconds", 0.0) + getattr(b, "seconds", 0.0) + time.perf_counter() - t0)
 
 
 def write_stats_task(store_path: str, key: str, group: str, total, fingerprint: str) -> dict:
-    """Write a reduced statistic and its done-flag; return a small summary."""
+    """Write a reduced statistic and its done-flag; return a small summary
+    (with the seconds of every task that made it, when they were timed)."""
+    t0 = time.perf_counter()
+    seconds = total.seconds if isinstance(total, Timed) else None
+    total = total.value if isinstance(total, Timed) else total
     if isinstance(total, PairSums):
         arrays = total.to_arrays()
         summary = {"pairs": int(len(total.pairs)), "products": int(total.count.sum())}
@@ -153,6 +177,8 @@ def write_stats_task(store_path: str, key: str, group: str, total, fingerprint: 
         summary = {"traces": int(total.n_traces)}
     write_stats(store_path, key, group, arrays)
     Checkpoints(store_path, "stats", key, fingerprint).mark_done(_GROUP_CHUNK[group], summary)
+    if seconds is not None:
+        summary["seconds"] = round(seconds + time.perf_counter() - t0, 4)
     return summary
 
 
@@ -340,14 +366,14 @@ def run_statistics(store: SurveyStore, config: SurveyConfig, *, client, runlog: 
             parts = []
             for shots in _groups(g["shot"], est.shot_group_traces):
                 rows = np.flatnonzero(np.isin(g["shot"], shots) & g["live"])
-                parts.append(client.submit(receiver_pairs_task, str(store.path), rec.name, rows, g["shot"][rows],
+                parts.append(client.submit(_timed, receiver_pairs_task, str(store.path), rec.name, rows, g["shot"][rows],
                                            g["receiver_index"][rows], rp_f, pure=False))
             wanted.append(("receiver_pairs", tree_sum(client, parts)))
         else:
             done_before.append((rec.name, "receiver_pairs"))
         if not ckpt.is_done(1):
             sp_f = client.scatter(sp, hash=False)
-            parts = [client.submit(source_pairs_task, str(store.path), rec.name,
+            parts = [client.submit(_timed, source_pairs_task, str(store.path), rec.name,
                                    *_side(g, np.isin(g["receiver_index"], recv)), sp_f, pure=False)
                      for recv in _groups(g["receiver_index"][g["receiver_index"] >= 0], est.shot_group_traces)]
             wanted.append(("source_pairs", tree_sum(client, parts)))
@@ -355,7 +381,7 @@ def run_statistics(store: SurveyStore, config: SurveyConfig, *, client, runlog: 
             done_before.append((rec.name, "source_pairs"))
         if not ckpt.is_done(2):
             bins = offset_bins(g["offset"], bin_m=est.offset_bin_m)
-            parts = [client.submit(log_power_task, str(store.path), rec.name, a, b, g["source_index"][a:b],
+            parts = [client.submit(_timed, log_power_task, str(store.path), rec.name, a, b, g["source_index"][a:b],
                                    g["receiver_index"][a:b], bins[a:b], g["live"][a:b], sizes, pure=False)
                      for a, b in rec.chunk_bounds()]
             wanted.append(("log_power", tree_sum(client, parts)))
@@ -383,7 +409,7 @@ def run_statistics(store: SurveyStore, config: SurveyConfig, *, client, runlog: 
                 done_before.append((key, "source_pairs"))
                 continue
             bf = client.scatter(between, hash=False)
-            parts = [client.submit(source_pairs_between_task, str(store.path), prev.name, rec.name,
+            parts = [client.submit(_timed, source_pairs_between_task, str(store.path), prev.name, rec.name,
                                    _side(gp, np.isin(gp["receiver_index"], recv)),
                                    _side(g, np.isin(g["receiver_index"], recv)), bf, pure=False)
                      for recv in _groups(_traces_at(common, gp, g), est.shot_group_traces)]

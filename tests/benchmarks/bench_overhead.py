@@ -9,8 +9,8 @@ apart), writes a synthetic survey and warms the page cache, then:
 1. ``run_flow`` (ingest -> estimate -> apply, one Prefect flow, its own
    local Dask cluster of ``--workers`` processes): wall seconds, and the
    run log's chunk-function seconds (``batch`` records of ingest, spectra
-   and apply carry ``seconds``, I/O included; the statistics records do
-   not);
+   statistics and apply carry ``seconds``, I/O included; a statistics
+   record's seconds are those of every task summed into it);
 2. ``run_flow`` again on the finished store: every chunk is skipped, so its
    wall time is close to the pure cost of the flow, the cluster and the
    checks;
@@ -18,12 +18,11 @@ apart), writes a synthetic survey and warms the page cache, then:
    without Prefect.
 
 Overhead = wall - (sum of chunk seconds) / workers, as a fraction of wall.
-Because the statistics tasks and the driver's solve write no seconds, the
-residual is also split by the run log's stage records into: before the
-first record (flow start, cluster start), statistics, solve, the driver's
-share of the chunk stages (stage wall - chunk seconds / workers), the gaps
-between stages (Prefect task transitions) and after the last record (flow
-and cluster shut-down).
+Because the driver's solve writes no seconds, the residual is also split
+by the run log's stage records into: before the first record (flow start,
+cluster start), the driver's share of the chunk stages (stage wall - chunk
+seconds / workers), the solve, the gaps between stages (Prefect task
+transitions) and after the last record (flow and cluster shut-down).
 """
 
 from __future__ import annotations
@@ -41,7 +40,7 @@ from pathlib import Path
 os.environ.setdefault("DO_NOT_TRACK", "1")
 os.environ.setdefault("PREFECT_SERVER_ANALYTICS_ENABLED", "false")
 
-CHUNK_STAGES = ("ingest", "spectra", "apply")  # the stages whose batch records carry seconds
+CHUNK_STAGES = ("ingest", "spectra", "stats", "apply")  # the stages whose batch records carry seconds
 
 
 def runlog_since(store: Path, since: float) -> list[dict]:
@@ -72,7 +71,7 @@ def account(records: list[dict], *, start: float, stop: float, workers: int) -> 
     stage_wall = {
         "ingest": marks.get("ingest:end", marks["estimate:start"]) - marks.get("ingest:start", first),
         "spectra": marks["spectra:end"] - marks["estimate:start"],
-        "statistics": marks["stats:end"] - marks["spectra:end"],
+        "stats": marks["stats:end"] - marks["spectra:end"],
         "solve": marks["estimate:end"] - marks["stats:end"],
         "apply": marks["apply:end"] - marks["apply:start"],
     }
@@ -82,7 +81,6 @@ def account(records: list[dict], *, start: float, stop: float, workers: int) -> 
     out["split"] = {
         "before first record (flow + cluster start)": first - start,
         "chunk stages, driver share (wall - chunk s / workers)": sum(driver.values()),
-        "statistics (no seconds in the run log)": stage_wall["statistics"],
         "solve (driver)": stage_wall["solve"],
         "between stages (Prefect task transitions)": gaps,
         "after last record (flow + cluster shut-down)": stop - last,
