@@ -83,6 +83,15 @@ def test_demo_runs_every_stage_on_a_tiny_survey(prefect_harness, tmp_path):
     assert ours == sorted(names)
     assert "round trip: every sample and trace header equal" in proc.stdout
     assert "qualified geophysicist" in proc.stdout
+    # the printed truth comparison is the report's (metrics.json holds the numbers behind it)
+    import json
+    import re
+
+    metrics = json.loads((tmp_path / "d" / "report" / "metrics.json").read_text())
+    printed = re.search(r"clean truth.*?: ([\d.]+) before, ([\d.]+) after", proc.stdout.replace("\n", " "))
+    survey = metrics["truth_comparison"]["survey"]
+    assert printed and float(printed.group(1)) == pytest.approx(survey["before"]["median"], abs=5e-4)
+    assert float(printed.group(2)) == pytest.approx(survey["after"]["median"], abs=5e-4)
     store = SurveyStore.open(tmp_path / "d" / "store.zarr")
     assert len(store.manifest()) == 3
     with segyio.open(str(tmp_path / "d" / "export.sgy"), ignore_geometry=True) as f:
