@@ -383,7 +383,11 @@ def run(
     workers: Optional[int] = typer.Option(None, "--workers", help="local worker processes (default: one per core)"),
     memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB"),
 ) -> None:
-    """ingest -> estimate -> apply as one Prefect flow on a Dask cluster."""
+    """ingest -> estimate -> apply as one Prefect flow on a Dask cluster.
+
+    Files already in the store are skipped, so a run with a new swath does only
+    its work, solves again and re-applies where station filters changed.
+    """
     from descatter.flows.service import run_flow
 
     out = run_flow(str(store), [str(f) for f in files], _opt_path(config), cluster=cluster,
