@@ -12,8 +12,8 @@ On a synthetic survey (``descatter synth``) the truth file beside the swaths'
 SEG-Y files gives each corrected trace's clean truth (the same trace without
 station filters and noise): the report then states how closely the corrected
 traces match it (``truth_correlation`` of :func:`descatter.tasks.report_metrics.batch_quality`).
-That file is found by its name beside the files the manifest records; the
-path is joined here for want of a storage helper that names it.
+That file is found beside the files the manifest records
+(:func:`descatter.storage.arrays_file.truth_beside`).
 """
 
 from __future__ import annotations
@@ -27,7 +27,7 @@ import numpy as np
 from descatter.flows import report_figures as figs
 from descatter.tasks.trace_qc import usable_traces
 from descatter.flows.report_page import CAUTION, build_page
-from descatter.storage.arrays_file import read_arrays
+from descatter.storage.arrays_file import read_arrays, truth_beside
 from descatter.storage.checkpoints import Checkpoints
 from descatter.storage.config_file import parse_config
 from descatter.storage.estimation import corrected_settings, read_solution
@@ -63,7 +63,6 @@ MAX_PAIR_SHOTS = 60      # rows of one pair panel
 BATCH_TRACES = 20_000    # traces held at once (whole shots)
 MIN_CMP_FOLD = 4         # bins with fewer traces give no S/N (semblance of 1 trace is 1)
 HIGH_ZONE_QUANTILE = 0.75
-TRUTH_FILE = "truth.npz"  # written by 'descatter synth' beside the swaths' SEG-Y files
 # synthetic coordinates are written at centimetre precision (flows.synth COORDINATE_SCALAR)
 TRUTH_MATCH_M = 0.05
 CORRELATION_EDGES = np.linspace(-1.0, 1.0, 41)  # histogram bins of the truth correlations
@@ -325,10 +324,11 @@ def _truth_of(store: SurveyStore, tables: dict) -> tuple[dict | None, dict]:
     beside them: ``({"arrays", "file", "source", "receiver"}, status)`` with
     the truth's station row of every station of the store, or ``(None,
     status)`` with the reason in ``status``."""
-    files = sorted({str(Path(rec.file).with_name(TRUTH_FILE)) for rec in store.manifest()})
-    found = [f for f in files if Path(f).is_file()]
+    candidates, existing = truth_beside([rec.file for rec in store.manifest()])
+    files, found = [str(p) for p in candidates], [str(p) for p in existing]
     if not found:
-        return None, {"available": False, "reason": f"no {TRUTH_FILE} beside the swaths' SEG-Y files "
+        name = candidates[0].name if candidates else "truth file"
+        return None, {"available": False, "reason": f"no {name} beside the swaths' SEG-Y files "
                                                     "(only synthetic surveys have a truth)"}
     if len(found) > 1 or len(files) > 1:
         return None, {"available": False, "reason": "the swaths' SEG-Y files lie in several folders "

@@ -15,7 +15,7 @@ from typing import Callable
 
 import numpy as np
 
-from descatter.storage.arrays_file import write_arrays
+from descatter.storage.arrays_file import truth_path, write_arrays
 from descatter.storage.atomic import write_bytes_atomic
 from descatter.storage.config_file import dump_config
 from descatter.storage.segy_write import (
@@ -156,7 +156,7 @@ def write_synthetic_survey(
     arrays = synthetic.truth_arrays(spec, truth, tables)
     if keep_clean:
         arrays["clean"] = np.concatenate(clean_parts, axis=0)
-    report.truth = write_arrays(out / "truth.npz", arrays)
+    report.truth = write_arrays(truth_path(out), arrays)
     if sps:
         report.sps = _write_sps(out, tables, relations)
     return report

@@ -33,3 +33,18 @@ def read_arrays(path: str | Path) -> dict[str, np.ndarray]:
             return {k: z[k] for k in z.files}
     except (ValueError, OSError) as exc:
         raise StoreFormatError(f"{path}: not a readable .npz array file ({exc})") from None
+
+
+TRUTH_FILE = "truth.npz"  # a synthetic survey's truth, beside its SEG-Y files
+
+
+def truth_path(survey_dir: str | Path) -> Path:
+    """Where a synthetic survey written to ``survey_dir`` keeps its truth."""
+    return Path(survey_dir) / TRUTH_FILE
+
+
+def truth_beside(segy_files: list[str | Path]) -> tuple[list[Path], list[Path]]:
+    """The truth file each folder of ``segy_files`` would hold (distinct,
+    sorted), and those of them that exist."""
+    candidates = sorted({truth_path(Path(f).parent) for f in segy_files})
+    return candidates, [p for p in candidates if p.is_file()]

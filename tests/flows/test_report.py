@@ -303,14 +303,16 @@ def test_without_a_matching_truth_the_report_says_why(built, tmp_path, monkeypat
     import descatter.flows.report as report
 
     monkeypatch.setattr(report, "_figures", lambda *args: {})  # the figures are checked above; numbers here
-    monkeypatch.setattr(report, "TRUTH_FILE", "absent_truth.npz")
+    import descatter.storage.arrays_file as arrays_file
+
+    monkeypatch.setattr(arrays_file, "TRUTH_FILE", "absent_truth.npz")
     result = write_report(built["store"], tmp_path / "none")
     t = json.loads((tmp_path / "none" / "metrics.json").read_text())["truth_comparison"]
     assert result["truth_median_correlation_after"] is None and t["available"] is False
     assert "no absent_truth.npz beside the swaths' SEG-Y files" in t["reason"]
     assert "No comparison with a synthetic truth" in (tmp_path / "none" / "index.html").read_text()
 
-    monkeypatch.setattr(report, "TRUTH_FILE", "truth.npz")
+    monkeypatch.setattr(arrays_file, "TRUTH_FILE", "truth.npz")
     real = report.read_arrays
 
     def another_survey(path):
