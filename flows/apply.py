@@ -21,8 +21,8 @@ import numpy as np
 from descatter.flows.writer import store_writer
 from descatter.storage.checkpoints import Checkpoints
 from descatter.storage.estimation import (
-    corrected_settings, corrected_solution_index, create_corrected, mark_corrected_solution, read_corrected_chunk,
-    read_solution,
+    corrected_settings, corrected_solution_index, create_corrected, list_solutions, mark_corrected_solution,
+    read_corrected_chunk, read_solution,
     write_corrected_chunk,
 )
 from descatter.storage.faults import fault_point
@@ -139,33 +139,24 @@ def apply_chunk(store_path: str, swath: str, chunk: int, start: int, stop: int, 
     return {"swath": swath, "chunk": chunk, "traces": stop - start, "resumed": False, **summary}
 
 
-def changed_stations(store: SurveyStore, solutions: list[str], current: str, new: dict, *,
-                     tolerance: float, measured: bool = False) -> dict[int, tuple[np.ndarray, np.ndarray]]:
-    """For each earlier solution in ``solutions`` (by index): which source and
-    receiver stations' filters differ from the ``new`` solution's by more than
-    ``tolerance`` (relative RMS; identity status changing counts as changed).
-    With a ``measured`` prewhitening, a noise-to-signal spectrum that moved by
-    more than the tolerance changes every station. Solutions no longer in the
-    store are left out (their rows are redone)."""
-    from descatter.storage.estimation import list_solutions
-
-    present = set(list_solutions(store))
-    out = {}
-    for u, sid in enumerate(solutions):
-        if sid == current or sid not in present:
-            continue
-        _, old, _ = read_solution(store, sid, names=SOLUTION_ARRAYS)
-        masks = []
-        for kind in ("source", "receiver"):
-            change = filter_change(old[f"{kind}_filter"], new[f"{kind}_filter"])
-            flip = np.ones(len(change), bool)
-            n_old = len(old[f"{kind}_identity"])
-            flip[:n_old] = old[f"{kind}_identity"] != new[f"{kind}_identity"][:n_old]
-            masks.append((change > tolerance) | flip)
-        if measured and _noise_moved(store, sid, new, tolerance):
-            masks = [np.ones_like(m) for m in masks]
-        out[u] = (masks[0], masks[1])
-    return out
+def changed_stations(store: SurveyStore, old_sid: str, new: dict, *, tolerance: float,
+                     measured: bool = False) -> tuple[np.ndarray, np.ndarray]:
+    """Which source and receiver stations' filters differ between solution
+    ``old_sid`` and the ``new`` one by more than ``tolerance`` (relative RMS;
+    identity status changing counts as changed). With a ``measured``
+    prewhitening, a noise-to-signal spectrum that moved by more than the
+    tolerance changes every station."""
+    _, old, _ = read_solution(store, old_sid, names=SOLUTION_ARRAYS)
+    masks = []
+    for kind in ("source", "receiver"):
+        change = filter_change(old[f"{kind}_filter"], new[f"{kind}_filter"])
+        flip = np.ones(len(change), bool)
+        n_old = len(old[f"{kind}_identity"])
+        flip[:n_old] = old[f"{kind}_identity"] != new[f"{kind}_identity"][:n_old]
+        masks.append((change > tolerance) | flip)
+    if measured and _noise_moved(store, old_sid, new, tolerance):
+        masks = [np.ones_like(m) for m in masks]
+    return masks[0], masks[1]
 
 
 def _noise_moved(store: SurveyStore, old_sid: str, new: dict, tolerance: float) -> bool:
@@ -242,6 +233,7 @@ def apply_solution(store_path: str | Path, config: SurveyConfig, *, client, solu
         tolerance = config.correction.reapply_tolerance
         records = store.manifest()
         futures = []
+        present, masks = set(list_solutions(store)), {}
         # what comes from the solution is not part of the fingerprint (its filters, and a measured
         # prewhitening): a new solution re-corrects only what it changes
         per_solution = {"solution", "prewhitening_spectrum", "warnings"}
@@ -259,9 +251,17 @@ def apply_solution(store_path: str | Path, config: SurveyConfig, *, client, solu
                 Checkpoints(store.path, STAGE, rec.name, fp).clear()
             index, used = corrected_solution_index(store, rec.name, sid)
             mark_corrected_solution(store, rec.name, None)
-            changed = changed_stations(store, used, sid, sol, tolerance=tolerance,
-                                       measured=settings["prewhitening_mode"] == "measured")
-            changed_f = client.scatter(changed, hash=False) if changed else {}
+            # per earlier solution still in the store: its station masks, computed and scattered
+            # once per apply (rows of solutions no longer in the store are redone)
+            changed_f = {}
+            for u, old_sid in enumerate(used):
+                if old_sid == sid or old_sid not in present:
+                    continue
+                if old_sid not in masks:
+                    masks[old_sid] = client.scatter(changed_stations(
+                        store, old_sid, sol, tolerance=tolerance, measured=settings["prewhitening_mode"] == "measured"),
+                        hash=False)
+                changed_f[u] = masks[old_sid]
             for chunk, (a, b) in enumerate(rec.chunk_bounds()):
                 futures.append(client.submit(apply_chunk, str(store.path), rec.name, chunk, a, b, sid, index,
                                              settings, fp, changed_f,
