@@ -151,9 +151,9 @@ def ingest(
     files: List[Path] = typer.Argument(..., help="SEG-Y files, one swath each (named by file stem)"),
     config: Optional[Path] = typer.Option(
         None, "--config", help="survey config (TOML); default: the one kept in the store, or the defaults for a new store"),
-    workers: Optional[int] = typer.Option(None, "--workers", help="local worker processes (default: one per core)"),
+    workers: Optional[int] = typer.Option(None, "--workers", help="worker processes (local default: one per core; batch and Kubernetes profiles: workers to ask for)"),
     cluster: str = typer.Option("local", "--cluster", help=CLUSTER_HELP),
-    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB"),
+    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB (local clusters only; profiles set their own)"),
 ) -> None:
     """Add SEG-Y swaths to a survey store (a committed file is skipped).
 
@@ -191,9 +191,9 @@ def ingest(
 def estimate(
     store: Path = typer.Argument(..., help="survey store"),
     config: Optional[Path] = typer.Option(None, "--config", help="survey config (default: the one kept at ingest)"),
-    workers: Optional[int] = typer.Option(None, "--workers", help="local worker processes (default: one per core)"),
+    workers: Optional[int] = typer.Option(None, "--workers", help="worker processes (local default: one per core; batch and Kubernetes profiles: workers to ask for)"),
     cluster: str = typer.Option("local", "--cluster", help=CLUSTER_HELP),
-    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB"),
+    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB (local clusters only; profiles set their own)"),
 ) -> None:
     """Measure every station's near-surface filter: spectra, pair statistics, global solve.
 
@@ -229,9 +229,9 @@ def apply(
     solution: Optional[str] = typer.Option(None, "--solution", help="solution id (default: the current one)"),
     config: Optional[Path] = typer.Option(None, "--config", help="survey config (default: the one kept at ingest)"),
     prewhitening: Optional[float] = typer.Option(None, "--prewhitening", help="fraction of mean in-band power"),
-    workers: Optional[int] = typer.Option(None, "--workers", help="local worker processes (default: one per core)"),
+    workers: Optional[int] = typer.Option(None, "--workers", help="worker processes (local default: one per core; batch and Kubernetes profiles: workers to ask for)"),
     cluster: str = typer.Option("local", "--cluster", help=CLUSTER_HELP),
-    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB"),
+    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB (local clusters only; profiles set their own)"),
 ) -> None:
     """Apply a solution's correction filters to every trace (into each swath's 'corrected').
 
@@ -380,8 +380,8 @@ def run(
     config: Optional[Path] = typer.Option(
         None, "--config", help="survey config (TOML); default: the one kept in the store, or the defaults for a new store"),
     cluster: str = typer.Option("local", "--cluster", help=CLUSTER_HELP),
-    workers: Optional[int] = typer.Option(None, "--workers", help="local worker processes (default: one per core)"),
-    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB"),
+    workers: Optional[int] = typer.Option(None, "--workers", help="worker processes (local default: one per core; batch and Kubernetes profiles: workers to ask for)"),
+    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB (local clusters only; profiles set their own)"),
 ) -> None:
     """ingest -> estimate -> apply as one Prefect flow on a Dask cluster.
 
@@ -405,8 +405,8 @@ def swath(
     file: Optional[Path] = typer.Argument(None, help="replace: the new SEG-Y file, named NAME.sgy"),
     config: Optional[Path] = typer.Option(None, "--config", help="survey config (default: the one kept at ingest)"),
     cluster: str = typer.Option("local", "--cluster", help=CLUSTER_HELP),
-    workers: Optional[int] = typer.Option(None, "--workers", help="local worker processes (default: one per core)"),
-    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB"),
+    workers: Optional[int] = typer.Option(None, "--workers", help="worker processes (local default: one per core; batch and Kubernetes profiles: workers to ask for)"),
+    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB (local clusters only; profiles set their own)"),
 ) -> None:
     """Remove a swath, or replace it by a new file; then solve again and re-apply where filters changed.
 
@@ -476,8 +476,8 @@ def demo(
     out: Path = typer.Argument(Path("demo-run"), help="folder for the demo survey, store and outputs"),
     size: str = typer.Option("demo", help="tiny or demo"),
     cluster: str = typer.Option("local", "--cluster", help=CLUSTER_HELP),
-    workers: Optional[int] = typer.Option(None, "--workers", help="local worker processes (default: one per core)"),
-    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB"),
+    workers: Optional[int] = typer.Option(None, "--workers", help="worker processes (local default: one per core; batch and Kubernetes profiles: workers to ask for)"),
+    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB (local clusters only; profiles set their own)"),
 ) -> None:
     """Run every stage on a synthetic survey and say where to look.
 

@@ -224,6 +224,7 @@ def build_cluster(profile: ClusterProfile | str | Path, *, dry_run: bool = False
             return ClusterPlan("local", "distributed.LocalCluster", kwargs, {"n_workers": kwargs["n_workers"]})
         from distributed import LocalCluster
 
+        _worker_environ()
         return LocalCluster(**kwargs)
     if isinstance(profile, (SlurmProfile, PbsProfile)):
         cls = _jobqueue_class(profile)
@@ -286,7 +287,7 @@ def dask_client(
     profile: a name in ``deploy/clusters`` (``slurm``, ``pbs``,
     ``kubernetes``, ``scheduler``...) or a path to a ``.toml`` profile.
     """
-    from distributed import Client, LocalCluster
+    from distributed import Client
 
     profile, source = resolve_profile(cluster, workers=workers, memory_limit=memory_limit)
     if isinstance(profile, SchedulerProfile):
@@ -298,8 +299,7 @@ def dask_client(
             client.close()
         return
     if isinstance(profile, LocalProfile):
-        _worker_environ()
-        with LocalCluster(**local_cluster_kwargs(profile)) as lc, Client(lc) as client:
+        with build_cluster(profile) as lc, Client(lc) as client:
             log.info("local Dask cluster: %d worker(s), %s; %s", len(lc.workers),
                      "processes" if profile.processes else "threads", dashboard_text(client))
             yield client

@@ -260,8 +260,8 @@ def _pair_panel(store: SurveyStore, table: ShotTable, an: Analysis, j: int, k: i
         rj = np.array([by_shot_j[c] for c in keys], np.int64)
         rk = np.array([by_shot_k[c] for c in keys], np.int64)
         rows = np.unique(np.concatenate([rj, rk]))
-        offset = store.array(name, "geometry/offset")[:][rows]
-        delay = store.array(name, "headers/delay_ms")[:][rows] * 1e-3
+        offset = _read_rows(store, name, "geometry/offset", rows)
+        delay = _read_rows(store, name, "headers/delay_ms", rows) * 1e-3
         ij, ik = np.searchsorted(rows, rj), np.searchsorted(rows, rk)
         for side, key in (("before", "traces"), ("after", "corrected")):
             w = an.flat(_read_rows(store, name, key, rows), offset, delay, window=True)
@@ -288,9 +288,9 @@ def _display_gather(store: SurveyStore, config: SurveyConfig, table: ShotTable, 
     name = store.swath_names()[table.swath[best]]
     g = read_swath_geometry(store, name, ["shot", "source_index", "receiver_index", "offset"])
     live = usable_traces(read_qc_flags(store, name), g["source_index"], g["receiver_index"],
-                             exclude_bits=config.qc.exclude_bits())
+                         exclude_bits=config.qc.exclude_bits())
     rows = np.flatnonzero(live & (g["shot"] == table.shot[best]))
-    delay = store.array(name, "headers/delay_ms")[:][rows] * 1e-3
+    delay = _read_rows(store, name, "headers/delay_ms", rows) * 1e-3
     out = {"swath": name, "shot": int(table.shot[best]), "source": int(table.source[best]),
            "scattering_fraction": float(frac[best]), "n_traces": int(rows.size)}
     for side, key in (("before", "traces"), ("after", "corrected")):

@@ -7,8 +7,10 @@ tasks: a stage is one task, and its chunk work goes straight to the Dask
 client from inside it (each Prefect task run costs far more than a chunk's
 Dask task, so chunks never become Prefect tasks). Checkpoints live in the
 store, not in Prefect's result cache. Flow names: ``descatter-run``,
-``descatter-ingest``, ``descatter-estimate``, ``descatter-apply``;
-parameters ``store``, ``files``, ``config`` and the cluster's.
+``descatter-ingest``, ``descatter-estimate``, ``descatter-apply``,
+``descatter-swath``; parameters ``store``, ``config`` and the cluster's,
+``files`` (run, ingest), ``solution``, ``mode``, ``prewhitening`` (apply),
+``action``, ``name``, ``file`` (swath).
 
 Every flow also takes an optional ``progress`` callable, ``(part, done,
 total)``, called in the flow's process as chunks finish: the command line

@@ -58,11 +58,17 @@ class Checkpoints:
             p.unlink(missing_ok=True)
 
 
-def clear_swath(store_path: str | Path, swath: str) -> None:
-    """Drop every done-flag that names ``swath``, in every stage."""
+def clear_swath(store_path: str | Path, swath: str) -> int:
+    """Drop every done-flag that names ``swath``, in every stage: its own and
+    those of keys that pair it with another swath (``a+b``). Returns the
+    number of flag folders removed."""
     import shutil
 
     root = Path(store_path) / CHECKPOINTS
-    if root.is_dir():
-        for stage in root.iterdir():
-            shutil.rmtree(stage / swath, ignore_errors=True)
+    removed = 0
+    for stage in sorted(root.iterdir()) if root.is_dir() else []:
+        for folder in sorted(stage.iterdir()) if stage.is_dir() else []:
+            if swath in folder.name.split("+"):
+                shutil.rmtree(folder, ignore_errors=True)
+                removed += 1
+    return removed

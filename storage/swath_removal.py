@@ -16,7 +16,7 @@ import shutil
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from descatter.storage.checkpoints import CHECKPOINTS
+from descatter.storage.checkpoints import CHECKPOINTS, clear_swath
 from descatter.storage.estimation import STATS, remove_stats_naming
 from descatter.storage.store import SWATHS, SurveyStore
 from descatter.tasks.errors import SwathConflictError
@@ -55,12 +55,7 @@ def remove_swath(store: SurveyStore, name: str) -> Removal:
         # the commit point: one atomic manifest rewrite
         store.drop_from_manifest(name)
     report.stats_keys = remove_stats_naming(store.path, name)
-    ckpt_root = store.path / CHECKPOINTS
-    for stage in sorted(ckpt_root.iterdir()) if ckpt_root.is_dir() else []:
-        for d in sorted(stage.iterdir()) if stage.is_dir() else []:
-            if name in _names(d.name):
-                shutil.rmtree(d, ignore_errors=True)
-                report.checkpoint_dirs += 1
+    report.checkpoint_dirs = clear_swath(store.path, name)
     group = store.path / SWATHS / name
     if group.exists():
         shutil.rmtree(group)
@@ -69,10 +64,11 @@ def remove_swath(store: SurveyStore, name: str) -> Removal:
 
 
 def _leftovers(root: Path, name: str) -> bool:
+    """Whether anything keyed by ``name`` is left: its group, a statistics key
+    (``stats/<key>``) or a stage's done-flags (``checkpoints/<stage>/<key>``)."""
     if (root / SWATHS / name).exists():
         return True
-    for base in (root / STATS, root / CHECKPOINTS):
-        for p in base.rglob("*") if base.is_dir() else []:
-            if p.is_dir() and name in _names(p.name):
-                return True
-    return False
+    keys = list((root / STATS).iterdir()) if (root / STATS).is_dir() else []
+    for stage in (root / CHECKPOINTS).iterdir() if (root / CHECKPOINTS).is_dir() else []:
+        keys += list(stage.iterdir()) if stage.is_dir() else []
+    return any(p.is_dir() and name in _names(p.name) for p in keys)

@@ -49,15 +49,16 @@ import scipy.sparse.linalg as sla
 from scipy.sparse.csgraph import connected_components
 
 from .errors import ConfigError, GeometryError
-from .phase_sync import component_labels
+from .phase_sync import HPD_LU_OPTIONS, component_labels
 from .statistics import LogPowerSums
 
 KINDS = ("source", "receiver", "offset", "cmp")
 METHODS = ("direct", "cg")
 
 # SuperLU options for a symmetric positive definite matrix: a symmetric
-# fill-reducing order and diagonal pivots (Cholesky-like fill, no pivoting).
-SPD_LU_OPTIONS = dict(permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0, options=dict(SymmetricMode=True))
+# fill-reducing order and diagonal pivots (Cholesky-like fill, no pivoting);
+# the same as the phase solve's for its Hermitian systems.
+SPD_LU_OPTIONS = HPD_LU_OPTIONS
 
 
 @dataclass

@@ -274,7 +274,11 @@ def group_signal_to_noise(s: np.ndarray, count: np.ndarray) -> np.ndarray:
     n = np.asarray(count, np.int64).reshape(-1)
     if s.shape != n.shape:
         raise ConfigError(f"s {s.shape} and count {n.shape}: expected one trace count per semblance")
-    return np.array([float(signal_to_noise(v, n_traces=int(c))) if c >= 1 else 0.0 for v, c in zip(s, n)])
+    out = np.zeros(len(s))
+    for c in np.unique(n[n >= 1]):  # one call per distinct count, not per group
+        at = n == c
+        out[at] = signal_to_noise(s[at], n_traces=int(c))
+    return out
 
 
 def snr_gain_db(before: np.ndarray, after: np.ndarray, *, floor: float = 1e-3, ceiling: float = 1e6) -> np.ndarray:

@@ -26,11 +26,11 @@ def _merge_pairs(pairs_a, pairs_b):
         union, inverse = np.unique(both, axis=0, return_inverse=True)
         inverse = inverse.reshape(-1)
         return union, inverse[: len(pairs_a)], inverse[len(pairs_a):]
-    # one int64 key per row, a * 2**32 + b, sorts as the rows do: np.unique on it is about 8x
-    # faster than np.unique(axis=0) (measured 13.5 -> 1.7 ms at 6,000 pairs), same result
+    # one int64 key per row, a * 2**32 + b, sorts as the rows do: np.unique on it is much
+    # faster than np.unique(axis=0) (measured 8.3 -> 0.44 ms merging two tables of 6,000 pairs), same result
     key = both[:, 0] * 2**32 + both[:, 1]
     ukey, inverse = np.unique(key, return_inverse=True)
-    union = np.column_stack([ukey >> 32, ukey & (2**32 - 1)]).reshape(-1, 2)
+    union = np.column_stack([ukey >> 32, ukey & (2**32 - 1)])
     return union, inverse[: len(pairs_a)], inverse[len(pairs_a):]
 
 

@@ -287,6 +287,7 @@ def usable_traces(flags: np.ndarray, source_index: np.ndarray, receiver_index: n
                   exclude_bits: int) -> np.ndarray:
     """bool [n]: traces the estimation uses and the correction changes: no
     flag among ``exclude_bits`` (the policies set to exclude) and both a
-    source and a receiver station (index >= 0)."""
-    return (((np.asarray(flags, np.uint16) & np.uint16(exclude_bits)) == 0)
+    source and a receiver station (index >= 0). The ``excluded`` bit always
+    excludes (:func:`excluded_traces`)."""
+    return (~excluded_traces(flags, exclude_bits=exclude_bits)
             & (np.asarray(source_index) >= 0) & (np.asarray(receiver_index) >= 0))

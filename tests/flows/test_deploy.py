@@ -507,3 +507,12 @@ def test_submit_through_a_prefect_server_and_worker(tmp_path):
             _stop(proc)
         server_log.close()
         worker_log.close()
+
+
+def test_local_workers_get_the_allocator_settings():
+    # the environment a local worker process starts with (flows/cluster.py WORKER_MALLOC_ENV)
+    from descatter.flows.cluster import WORKER_MALLOC_ENV
+
+    with dask_client("local", workers=1) as client:
+        seen = client.run(lambda: {k: os.environ.get(k) for k in WORKER_MALLOC_ENV})
+    assert list(seen.values()) == [{k: str(v) for k, v in WORKER_MALLOC_ENV.items()}]

@@ -100,8 +100,12 @@ def test_checkpoints_are_keyed_by_fingerprint(tmp_path):
     assert ck.summary(0) == {"digest": "ab"}
     assert ck.done_chunks() == [0, 2]
     assert not Checkpoints(tmp_path, "ingest", "line01", "fp2").is_done(0)  # other parameters
-    clear_swath(tmp_path, "line01")
-    assert ck.done_chunks() == []
+    pair = Checkpoints(tmp_path, "stats", "line00+line01", "fp1")
+    pair.mark_done(1)
+    other = Checkpoints(tmp_path, "stats", "line00+line02", "fp1")
+    other.mark_done(1)
+    assert clear_swath(tmp_path, "line01") == 2  # its own flags and those of a pair naming it
+    assert ck.done_chunks() == [] and pair.done_chunks() == [] and other.done_chunks() == [1]
 
 
 def test_sweep_partials_removes_only_temporaries(tmp_path):

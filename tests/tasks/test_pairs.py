@@ -487,6 +487,7 @@ def test_smooth_over_frequency_keeps_a_linear_phase_and_adds_up():
     each = smooth_pair_sums(parts[0], bin_hz=0.5, half_width_hz=2.0) + smooth_pair_sums(parts[1], bin_hz=0.5,
                                                                                           half_width_hz=2.0)
     np.testing.assert_allclose(both.cross, each.cross, rtol=1e-12)
+    np.testing.assert_allclose(both.power_a, each.power_a, rtol=1e-12)
     np.testing.assert_allclose(both.power_b, each.power_b, rtol=1e-12)
     assert np.array_equal(both.count, each.count)
     with pytest.raises(ConfigError, match="half-width"):

@@ -103,3 +103,14 @@ def test_merge_pairs_agrees_with_numpy_unique_on_rows():
     assert np.array_equal(ia, inv.reshape(-1)[: len(a)]) and np.array_equal(ib, inv.reshape(-1)[len(a):])
     empty, ea, eb = _merge_pairs(np.zeros((0, 2), np.int64), np.zeros((0, 2), np.int64))
     assert empty.shape == (0, 2) and ea.size == eb.size == 0
+
+
+def test_merge_pairs_outside_the_packed_range_falls_back_to_rows():
+    from descatter.tasks.statistics import _merge_pairs
+
+    a = np.array([[0, 2**31 + 5], [1, 2]], np.int64)  # a station index too large for the packed key
+    b = np.array([[1, 2], [3, 4]], np.int64)
+    union, ia, ib = _merge_pairs(a, b)
+    ref, inv = np.unique(np.concatenate([a, b]), axis=0, return_inverse=True)  # numpy.unique over rows
+    assert np.array_equal(union, ref)
+    assert np.array_equal(ia, inv.reshape(-1)[:2]) and np.array_equal(ib, inv.reshape(-1)[2:])
