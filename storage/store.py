@@ -284,7 +284,7 @@ class SurveyStore:
         n_samples: int,
         chunk_traces: int,
         header_dtypes: dict[str, str],
-        compression_level: int = 1,
+        compression_level: int = 0,
     ) -> None:
         """Create (or recreate) the staging arrays of one swath, all chunked
         on the same trace boundaries so one task writes one chunk of each."""

@@ -86,7 +86,9 @@ class IngestConfig(_Section):
         json_schema_extra=_unit("traces"),
     )
     compression_level: int = Field(
-        1, ge=0, le=9, description="blosc lz4 level for trace samples (0 stores raw)",
+        # 0 by measurement: lz4 + shuffle made float32 samples only 1.27x smaller, for 1.6x the
+        # write and 2.2x the read time of a 24 MB chunk (19 vs 30 ms, 5.7 vs 12.5 ms)
+        0, ge=0, le=9, description="blosc lz4 level for trace samples (0 stores raw)",
         json_schema_extra=_unit("level"),
     )
     headers: HeaderPositions = Field(default_factory=HeaderPositions, description="trace-header byte positions")

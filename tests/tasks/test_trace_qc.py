@@ -20,7 +20,10 @@ from descatter.tasks.trace_qc import (
     flag_counts,
     flag_names,
     join_flags,
+    dead_traces,
+    nan_traces,
     raise_on_flags,
+    sample_flags,
     trace_flags,
 )
 
@@ -111,6 +114,29 @@ def test_clipped_against_a_loop_reference():
         assert clipped_traces(s, clip_run=k).tolist() == expected
     with pytest.raises(ValueError, match="clip_run"):
         clipped_traces(s, clip_run=1)
+
+
+def test_blocked_sample_flags_equal_the_three_whole_chunk_tests():
+    """The one-sweep, cache-blocked ``sample_flags`` against the separate
+    dead / nan / clipped definitions, on coarse values (many plateaus, so
+    many grid candidates), planted NaN/Inf, negative peaks, and block sizes
+    that cut the traces into uneven blocks."""
+    rng = np.random.default_rng(17)
+    s = rng.integers(-3, 4, (301, 41)).astype(np.float32)
+    s[:7] = 0.0
+    s[8, 3], s[9, 40], s[10, 0] = np.nan, np.inf, -np.inf
+    s[11, 10:20] = -9.0  # run at the negative peak
+    s[12] = 2.0  # a constant trace is one long run at its peak
+    s[13, 0:3] = 7.0  # a short run at the very start
+    for k in (2, 3, 4, 5, 8):
+        expected = (dead_traces(s) * FLAG_BITS["dead"] | nan_traces(s) * FLAG_BITS["nan"]
+                    | clipped_traces(s, clip_run=k) * FLAG_BITS["clipped"]).astype(np.uint16)
+        for rows in (1, 7, 128, 1000):
+            assert np.array_equal(sample_flags(s, clip_run=k, rows=rows), expected), (k, rows)
+    assert sample_flags(s[:, :3], clip_run=4)[11] == 0  # shorter than one run: never clipped
+    assert (sample_flags(np.zeros((3, 0), np.float32), clip_run=4) == FLAG_BITS["dead"]).all()
+    with pytest.raises(ValueError, match="clip_run"):
+        sample_flags(s, clip_run=1)
 
 
 def test_duplicates_across_chunks_need_whole_swath_keys():
