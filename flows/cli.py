@@ -10,7 +10,7 @@ import logging
 import os
 import sys
 from pathlib import Path
-from typing import List, Optional, Tuple
+from typing import Annotated, List, Optional, Tuple
 
 import typer
 from rich.console import Console
@@ -62,6 +62,20 @@ class ConsoleLogHandler(logging.Handler):
 
 CLUSTER_HELP = ("local, threads, tcp://HOST:PORT, or a cluster profile: a name in deploy/clusters "
                 "(slurm, pbs, kubernetes, scheduler) or a path to a .toml")
+
+# Parameters shared by several commands, declared once. Typer takes the
+# default from the parameter (``cluster: ClusterOpt = "local"``), not from here.
+StoreArg = Annotated[Path, typer.Argument(help="survey store")]
+ClusterOpt = Annotated[str, typer.Option("--cluster", help=CLUSTER_HELP)]
+WorkersOpt = Annotated[Optional[int], typer.Option(
+    "--workers", help="worker processes (local default: one per core; batch and Kubernetes profiles: workers to ask for)")]
+MemoryLimitOpt = Annotated[Optional[str], typer.Option(
+    "--memory-limit", help="per worker, e.g. 4GB (local clusters only; profiles set their own)")]
+StoredConfigOpt = Annotated[Optional[Path], typer.Option(
+    "--config", help="survey config (default: the one kept at ingest)")]
+NewStoreConfigOpt = Annotated[Optional[Path], typer.Option(
+    "--config", help="survey config (TOML); default: the one kept in the store, or the defaults for a new store")]
+SolutionOpt = Annotated[Optional[str], typer.Option("--solution", help="solution id (default: the current one)")]
 
 
 def _kept(recomputed: int, traces: int) -> str:
@@ -149,11 +163,10 @@ def synth(
 def ingest(
     store: Path = typer.Argument(..., help="survey store (created if missing)"),
     files: List[Path] = typer.Argument(..., help="SEG-Y files, one swath each (named by file stem)"),
-    config: Optional[Path] = typer.Option(
-        None, "--config", help="survey config (TOML); default: the one kept in the store, or the defaults for a new store"),
-    workers: Optional[int] = typer.Option(None, "--workers", help="worker processes (local default: one per core; batch and Kubernetes profiles: workers to ask for)"),
-    cluster: str = typer.Option("local", "--cluster", help=CLUSTER_HELP),
-    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB (local clusters only; profiles set their own)"),
+    config: NewStoreConfigOpt = None,
+    workers: WorkersOpt = None,
+    cluster: ClusterOpt = "local",
+    memory_limit: MemoryLimitOpt = None,
 ) -> None:
     """Add SEG-Y swaths to a survey store (a committed file is skipped).
 
@@ -189,11 +202,11 @@ def ingest(
 
 @app.command()
 def estimate(
-    store: Path = typer.Argument(..., help="survey store"),
-    config: Optional[Path] = typer.Option(None, "--config", help="survey config (default: the one kept at ingest)"),
-    workers: Optional[int] = typer.Option(None, "--workers", help="worker processes (local default: one per core; batch and Kubernetes profiles: workers to ask for)"),
-    cluster: str = typer.Option("local", "--cluster", help=CLUSTER_HELP),
-    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB (local clusters only; profiles set their own)"),
+    store: StoreArg,
+    config: StoredConfigOpt = None,
+    workers: WorkersOpt = None,
+    cluster: ClusterOpt = "local",
+    memory_limit: MemoryLimitOpt = None,
 ) -> None:
     """Measure every station's near-surface filter: spectra, pair statistics, global solve.
 
@@ -224,14 +237,14 @@ def estimate(
 
 @app.command()
 def apply(
-    store: Path = typer.Argument(..., help="survey store"),
+    store: StoreArg,
     mode: Optional[str] = typer.Option(None, "--mode", help="full (amplitude and phase, default) or phase"),
-    solution: Optional[str] = typer.Option(None, "--solution", help="solution id (default: the current one)"),
-    config: Optional[Path] = typer.Option(None, "--config", help="survey config (default: the one kept at ingest)"),
+    solution: SolutionOpt = None,
+    config: StoredConfigOpt = None,
     prewhitening: Optional[float] = typer.Option(None, "--prewhitening", help="fraction of mean in-band power"),
-    workers: Optional[int] = typer.Option(None, "--workers", help="worker processes (local default: one per core; batch and Kubernetes profiles: workers to ask for)"),
-    cluster: str = typer.Option("local", "--cluster", help=CLUSTER_HELP),
-    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB (local clusters only; profiles set their own)"),
+    workers: WorkersOpt = None,
+    cluster: ClusterOpt = "local",
+    memory_limit: MemoryLimitOpt = None,
 ) -> None:
     """Apply a solution's correction filters to every trace (into each swath's 'corrected').
 
@@ -257,7 +270,7 @@ def apply(
 def report(
     store: Path = typer.Argument(..., help="survey store (estimated and corrected)"),
     out: Path = typer.Argument(..., help="folder for index.html, PNG figures and metrics.json"),
-    solution: Optional[str] = typer.Option(None, "--solution", help="solution id (default: the current one)"),
+    solution: SolutionOpt = None,
     max_traces: int = typer.Option(200_000, "--max-traces", help="traces sampled (whole shots) for trace metrics"),
 ) -> None:
     """QC report: station maps, pair correlations, gathers, spectra, S/N before and after, spacing."""
@@ -268,7 +281,7 @@ def report(
 
 
 @app.command()
-def solutions(store: Path = typer.Argument(..., help="survey store")) -> None:
+def solutions(store: StoreArg) -> None:
     """List the store's solutions (the current one marked)."""
     from descatter.storage.estimation import list_solutions, solution_attrs
     from descatter.storage.store import SurveyStore
@@ -289,10 +302,10 @@ def solutions(store: Path = typer.Argument(..., help="survey store")) -> None:
 
 @app.command()
 def stations(
-    store: Path = typer.Argument(..., help="survey store"),
+    store: StoreArg,
     out: Path = typer.Argument(..., help="stations.csv (or filters.npz with --filters)"),
     filters: bool = typer.Option(False, "--filters", help="write station responses and filters (.npz)"),
-    solution: Optional[str] = typer.Option(None, "--solution", help="solution id (default: the current one)"),
+    solution: SolutionOpt = None,
 ) -> None:
     """Write a solution's stations (attributes as CSV, or filters as .npz)."""
     from descatter.flows.stations_table import write_filters, write_station_table
@@ -304,7 +317,7 @@ def stations(
 # -- info -----------------------------------------------------------------
 
 @app.command()
-def info(store: Path = typer.Argument(..., help="survey store")) -> None:
+def info(store: StoreArg) -> None:
     """Traces, samples, interval, swaths and warnings of a store."""
     from descatter.flows.summary import store_summary
 
@@ -315,7 +328,7 @@ def info(store: Path = typer.Argument(..., help="survey store")) -> None:
 
 @app.command()
 def geometry(
-    store: Path = typer.Argument(..., help="survey store"),
+    store: StoreArg,
     sps: Tuple[Path, Path, Path] = typer.Option(..., "--sps", help="SEG SPS files: S (sources), R (receivers), X (relations)"),
     config: Optional[Path] = typer.Option(None, "--config", help="survey config (SPS revision, columns, snapping)"),
 ) -> None:
@@ -335,7 +348,7 @@ def geometry(
 
 @app.command()
 def qc(
-    store: Path = typer.Argument(..., help="survey store"),
+    store: StoreArg,
     out: Path = typer.Argument(..., help="CSV file: swath,trace,field_record,channel,flags"),
 ) -> None:
     """Write every flagged or excluded trace with its reasons to a CSV file."""
@@ -349,7 +362,7 @@ def qc(
 
 @app.command()
 def export(
-    store: Path = typer.Argument(..., help="survey store"),
+    store: StoreArg,
     out: Path = typer.Argument(..., help="output SEG-Y file (or folder with --per-swath)"),
     array: str = typer.Option("traces", "--array", help="traces or corrected"),
     sample_format: str = typer.Option("ieee", "--format", help="ieee (format 5) or ibm (format 1)"),
@@ -377,11 +390,10 @@ def export(
 def run(
     store: Path = typer.Argument(..., help="survey store (created if missing)"),
     files: List[Path] = typer.Argument(..., help="SEG-Y files, one swath each"),
-    config: Optional[Path] = typer.Option(
-        None, "--config", help="survey config (TOML); default: the one kept in the store, or the defaults for a new store"),
-    cluster: str = typer.Option("local", "--cluster", help=CLUSTER_HELP),
-    workers: Optional[int] = typer.Option(None, "--workers", help="worker processes (local default: one per core; batch and Kubernetes profiles: workers to ask for)"),
-    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB (local clusters only; profiles set their own)"),
+    config: NewStoreConfigOpt = None,
+    cluster: ClusterOpt = "local",
+    workers: WorkersOpt = None,
+    memory_limit: MemoryLimitOpt = None,
 ) -> None:
     """ingest -> estimate -> apply as one Prefect flow on a Dask cluster.
 
@@ -399,14 +411,14 @@ def run(
 
 @app.command()
 def swath(
-    store: Path = typer.Argument(..., help="survey store"),
+    store: StoreArg,
     action: str = typer.Argument(..., help="remove or replace"),
     name: str = typer.Argument(..., help="the swath (a file stem, e.g. line03)"),
     file: Optional[Path] = typer.Argument(None, help="replace: the new SEG-Y file, named NAME.sgy"),
-    config: Optional[Path] = typer.Option(None, "--config", help="survey config (default: the one kept at ingest)"),
-    cluster: str = typer.Option("local", "--cluster", help=CLUSTER_HELP),
-    workers: Optional[int] = typer.Option(None, "--workers", help="worker processes (local default: one per core; batch and Kubernetes profiles: workers to ask for)"),
-    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB (local clusters only; profiles set their own)"),
+    config: StoredConfigOpt = None,
+    cluster: ClusterOpt = "local",
+    workers: WorkersOpt = None,
+    memory_limit: MemoryLimitOpt = None,
 ) -> None:
     """Remove a swath, or replace it by a new file; then solve again and re-apply where filters changed.
 
@@ -440,7 +452,7 @@ def swath(
 
 
 @app.command()
-def status(store: Path = typer.Argument(..., help="survey store")) -> None:
+def status(store: StoreArg) -> None:
     """Per stage: chunks done/total, throughput, ETA, last warnings and errors (from the run log)."""
     from descatter.flows.status import status_text
 
@@ -451,7 +463,7 @@ def status(store: Path = typer.Argument(..., help="survey store")) -> None:
 
 @app.command()
 def lock(
-    store: Path = typer.Argument(..., help="survey store"),
+    store: StoreArg,
     clear: bool = typer.Option(False, "--clear", help="remove a stale lock (refused while its holder lives)"),
 ) -> None:
     """Show the store's writer lock, or clear a stale one."""
@@ -475,9 +487,9 @@ def lock(
 def demo(
     out: Path = typer.Argument(Path("demo-run"), help="folder for the demo survey, store and outputs"),
     size: str = typer.Option("demo", help="tiny or demo"),
-    cluster: str = typer.Option("local", "--cluster", help=CLUSTER_HELP),
-    workers: Optional[int] = typer.Option(None, "--workers", help="worker processes (local default: one per core; batch and Kubernetes profiles: workers to ask for)"),
-    memory_limit: Optional[str] = typer.Option(None, "--memory-limit", help="per worker, e.g. 4GB (local clusters only; profiles set their own)"),
+    cluster: ClusterOpt = "local",
+    workers: WorkersOpt = None,
+    memory_limit: MemoryLimitOpt = None,
 ) -> None:
     """Run every stage on a synthetic survey and say where to look.
 

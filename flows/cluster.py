@@ -267,12 +267,12 @@ def build_cluster(profile: ClusterProfile | str | Path, *, dry_run: bool = False
     raise ConfigError(f"unknown cluster profile type {type(profile).__name__}")
 
 
-def _start_timeout(profile: ClusterProfile) -> float:
-    if isinstance(profile, (SlurmProfile, PbsProfile)):
-        return profile.scale.start_timeout_s
+def _start_timeout(profile: SlurmProfile | PbsProfile | KubernetesProfile) -> float:
+    """Seconds to wait for the first worker of a batch or Kubernetes cluster
+    (local and scheduler clusters have their workers before they are used)."""
     if isinstance(profile, KubernetesProfile):
         return float(profile.resource_timeout_s)
-    return 60.0
+    return profile.scale.start_timeout_s
 
 
 @contextlib.contextmanager

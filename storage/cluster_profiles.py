@@ -18,9 +18,9 @@ from __future__ import annotations
 
 import os
 import re
-import tomllib
 from pathlib import Path
 
+from descatter.storage.config_file import read_toml
 from descatter.tasks.cluster_profile import ClusterProfile, parse_profile
 from descatter.tasks.errors import ConfigError, InputNotFoundError
 
@@ -93,13 +93,7 @@ def find_profile(name_or_path: str | Path, *, cwd: Path | None = None,
 
 def read_profile(path: str | Path) -> ClusterProfile:
     """Read and validate one profile file."""
-    path = Path(path)
-    try:
-        document = tomllib.loads(path.read_text())
-    except FileNotFoundError:
-        raise InputNotFoundError(f"{path}: no such cluster profile file") from None
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise ConfigError(f"{path}: not valid TOML ({exc})") from None
+    document = read_toml(path, missing=f"{path}: no such cluster profile file")
     return parse_profile(document, source=str(path))
 
 

@@ -15,21 +15,26 @@ from typing import Any
 
 from pydantic import BaseModel, ValidationError
 
+from descatter.tasks.cluster_profile import explain_validation_error
 from descatter.tasks.config import SurveyConfig
 from descatter.tasks.errors import ConfigError, InputNotFoundError
 
 
-def _explain(exc: ValidationError, source: str) -> str:
-    lines = [f"{source}: invalid survey config"]
-    for err in exc.errors():
-        key = ".".join(str(p) for p in err["loc"]) or "(top level)"
-        if err["type"] == "extra_forbidden":
-            lines.append(f"  - {key}: unknown key (run 'descatter config init' to see every key)")
-            continue
-        got = err.get("input")
-        got_txt = "" if isinstance(got, dict) else f" (got {got!r})"
-        lines.append(f"  - {key}: {err['msg']}{got_txt}")
-    return "\n".join(lines)
+def read_toml(path: str | Path, *, missing: str) -> dict[str, Any]:
+    """The parsed TOML document at ``path``.
+
+    A missing file (or a folder) raises :class:`InputNotFoundError` with the
+    message ``missing``; a file that is not TOML (or not UTF-8) raises
+    :class:`ConfigError` naming the file and the parser's reason."""
+    path = Path(path)
+    if not path.is_file():
+        raise InputNotFoundError(missing)
+    try:
+        return tomllib.loads(path.read_text())
+    except FileNotFoundError:  # removed since the check
+        raise InputNotFoundError(missing) from None
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"{path}: not valid TOML ({exc})") from None
 
 
 def parse_config(document: dict[str, Any], *, source: str = "config") -> SurveyConfig:
@@ -37,20 +42,16 @@ def parse_config(document: dict[str, Any], *, source: str = "config") -> SurveyC
     try:
         return SurveyConfig.model_validate(document)
     except ValidationError as exc:
-        raise ConfigError(_explain(exc, source)) from None
+        raise ConfigError(explain_validation_error(
+            exc, SurveyConfig, source=source, what="survey config",
+            unknown_key_hint="run 'descatter config init' to see every key")) from None
 
 
 def load_config(path: str | Path | None) -> SurveyConfig:
     """Read and validate a TOML survey config; ``None`` gives the defaults."""
     if path is None:
         return SurveyConfig()
-    path = Path(path)
-    if not path.is_file():
-        raise InputNotFoundError(f"{path}: no such config file (write one with 'descatter config init {path}')")
-    try:
-        document = tomllib.loads(path.read_text())
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise ConfigError(f"{path}: not valid TOML ({exc})") from None
+    document = read_toml(path, missing=f"{path}: no such config file (write one with 'descatter config init {path}')")
     return parse_config(document, source=str(path))
 
 

@@ -29,15 +29,9 @@ from descatter.tasks.errors import ConfigError
 
 # -- size and time strings ---------------------------------------------------
 
-# Units accepted by dask.utils.parse_bytes (decimal and binary prefixes, any
-# case, "B" optional); a unit is required in profiles so that "4" is never
-# read as four bytes by accident.
-_BYTE_UNITS = {"b": 1} | {
-    unit: size
-    for power, prefix in enumerate("kmgtp", start=1)
-    for unit, size in ((f"{prefix}b", 1000**power), (prefix, 1000**power),
-                       (f"{prefix}ib", 1024**power), (f"{prefix}i", 1024**power))
-}
+# The form of a Dask byte string in a profile: a non-negative decimal number
+# and a unit. The unit is required so that "4" is never read as four bytes by
+# accident; dask.utils.parse_bytes reads the value (and refuses unknown units).
 _BYTES_RE = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*([A-Za-z]*)\s*$")
 
 # Kubernetes resource quantities: a decimal number with an optional SI suffix
@@ -54,17 +48,22 @@ _K8S_NAME_RE = re.compile(r"^[a-z0-9]([-a-z0-9]{0,61}[a-z0-9])?$")
 
 
 def byte_count(text: str, *, bare: bool = False) -> int:
-    """Bytes in a Dask byte string: ``"4GiB"`` -> 4 * 2**30, ``"500 MB"`` -> 5e8.
+    """Bytes in a Dask byte string, as Dask reads it (``dask.utils.parse_bytes``):
+    ``"4GiB"`` -> 4 * 2**30, ``"500 MB"`` -> 5e8.
 
     ``bare=True`` also takes a plain number of bytes (``"4000000000"``).
     Raises ``ValueError`` naming the accepted units for anything else."""
+    from dask.utils import parse_bytes  # here, not at the top: the model loads without Dask
+
     match = _BYTES_RE.match(text)
-    unit = match.group(2).lower() if match else ""
-    if not match or (unit not in _BYTE_UNITS and not (bare and unit == "")):
-        raise ValueError(
-            f"expected a size with a unit such as '4GiB' or '500MB' (units: B, kB, MB, GB, TB, PB, KiB, MiB, GiB, TiB, PiB; "
-            f"the B may be left out), got {text!r}")
-    return int(float(match.group(1)) * _BYTE_UNITS.get(unit, 1))
+    if match and (match.group(2) or bare):
+        try:
+            return parse_bytes(text)
+        except ValueError:
+            pass  # an unknown unit
+    raise ValueError(
+        f"expected a size with a unit such as '4GiB' or '500MB' (units: B, kB, MB, GB, TB, PB, KiB, MiB, GiB, TiB, PiB; "
+        f"the B may be left out), got {text!r}")
 
 
 def _byte_string(value: str | None, *, local: bool = False) -> str | None:
@@ -268,13 +267,21 @@ def _fields_at(model: type[BaseModel], loc: tuple) -> list[str]:
     return list(model.model_fields)
 
 
-def _explain(exc: ValidationError, model: type[BaseModel], source: str) -> str:
-    lines = [f"{source}: invalid cluster profile"]
+def explain_validation_error(exc: ValidationError, model: type[BaseModel], *, source: str, what: str,
+                             unknown_key_hint: str | None = None) -> str:
+    """A pydantic ``ValidationError`` as text for a person: a heading naming
+    ``source`` (the file) and ``what`` it should be, then one line per bad key
+    (dotted, e.g. ``job.memory``) with what was expected and the value got.
+
+    An unknown key is answered with ``unknown_key_hint``, or else with the keys
+    its table allows. Pure, like the models, so that both the cluster profiles
+    here and the survey config (``descatter.storage.config_file``) use it."""
+    lines = [f"{source}: invalid {what}"]
     for err in exc.errors():
         key = ".".join(str(p) for p in err["loc"]) or "(top level)"
         if err["type"] == "extra_forbidden":
-            allowed = _fields_at(model, err["loc"])
-            lines.append(f"  - {key}: unknown key (expected one of: {', '.join(allowed)})")
+            hint = unknown_key_hint or f"expected one of: {', '.join(_fields_at(model, err['loc']))}"
+            lines.append(f"  - {key}: unknown key ({hint})")
             continue
         got = err.get("input")
         msg = err["msg"].removeprefix("Value error, ")
@@ -296,4 +303,4 @@ def parse_profile(document: dict[str, Any], *, source: str = "cluster profile") 
     try:
         return model.model_validate(document)
     except ValidationError as exc:
-        raise ConfigError(_explain(exc, model, source)) from None
+        raise ConfigError(explain_validation_error(exc, model, source=source, what="cluster profile")) from None

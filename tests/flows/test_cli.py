@@ -124,3 +124,23 @@ def test_little_endian_input_exported_big_or_kept(tiny_survey, client, tmp_path)
     res = _run("export", str(store), str(tmp_path / "per"), "--per-swath", "--byte-order", "little")
     assert res.exit_code == 0
     assert (tmp_path / "per" / "le.sgy").read_bytes() == little.read_bytes()
+
+
+def test_cluster_options_are_the_same_in_every_command_that_starts_a_cluster():
+    from typer.main import get_command
+
+    from descatter.flows.cli import CLUSTER_HELP
+
+    commands = get_command(app).commands
+    seen = {}
+    for name in ("ingest", "estimate", "apply", "run", "swath", "demo"):
+        options = {p.name: p for p in commands[name].params}
+        assert options["cluster"].opts == ["--cluster"] and options["cluster"].default == "local"
+        assert options["cluster"].help == CLUSTER_HELP
+        assert options["workers"].opts == ["--workers"] and options["workers"].default is None
+        assert options["memory_limit"].opts == ["--memory-limit"] and options["memory_limit"].default is None
+        seen[name] = (options["workers"].help, options["memory_limit"].help)
+    assert len(set(seen.values())) == 1
+    assert "4GB" in seen["demo"][1] and "one per core" in seen["demo"][0]
+    res = _run("apply", "--help")
+    assert res.exit_code == 0 and "--memory-limit" in res.stdout and "--solution" in res.stdout
