@@ -32,7 +32,7 @@ log = logging.getLogger(__name__)
 FREQ_BLOCK = 8  # frequencies per phase-solve task
 # Part of every solution's inputs fingerprint: bump it when the solve's
 # method changes, so an unchanged-inputs rerun does not keep an old answer.
-SOLVE_VERSION = 4
+SOLVE_VERSION = 5
 
 
 @dataclass
@@ -44,24 +44,30 @@ class Totals:
 
 
 def load_totals(store: SurveyStore) -> Totals:
-    """Sum every swath's statistics (and swath pairs') in manifest order."""
+    """Sum every swath's statistics (and swath pairs') in manifest order:
+    per swath its own receiver pairs, its own source pairs, then the source
+    pairs it shares with each earlier swath. Pair sums are read one part at
+    a time (only the pair tables of all parts are held together)."""
     names = store.swath_names()
-    rp = sp = lp = None
-    keys = []
+    keys, source_keys = [], []
+    lp = None
     for i, name in enumerate(names):
-        r = PairSums.from_arrays(read_stats(store.path, name, "receiver_pairs"))
-        s = PairSums.from_arrays(read_stats(store.path, name, "source_pairs"))
-        l = lps_from_arrays(read_stats(store.path, name, "log_power"))
         keys.append(name)
+        source_keys.append(name)
         for prev in names[:i]:
             key = f"{prev}+{name}"
             if has_stats(store.path, key, "source_pairs"):
-                s = s + PairSums.from_arrays(read_stats(store.path, key, "source_pairs"))
+                source_keys.append(key)
                 keys.append(key)
-        rp = r if rp is None else rp + r
-        sp = s if sp is None else sp + s
+        l = lps_from_arrays(read_stats(store.path, name, "log_power"))
         lp = l if lp is None else lp + l
-    return Totals(rp, sp, lp, keys)
+    n_freq = lp.sum_sq.shape[0] if lp is not None else 0
+
+    def total(group: str, parts: list[str]) -> PairSums:
+        tables = [read_stats(store.path, k, group, names=("pairs",))["pairs"] for k in parts]
+        return PairSums.total(tables, lambda i: PairSums.from_arrays(read_stats(store.path, parts[i], group)), n_freq)
+
+    return Totals(total("receiver_pairs", names), total("source_pairs", source_keys), lp, keys)
 
 
 def _phase_weight(p: PairSums) -> np.ndarray:

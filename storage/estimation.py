@@ -21,14 +21,16 @@ from typing import Any
 import numpy as np
 import zarr
 import zarr.errors
-from zarr.codecs import BloscCodec
 
 from descatter.storage.store import SWATHS, SurveyStore, write_chunk
 from descatter.tasks.errors import InputNotFoundError, StoreFormatError
 
 STATS = "stats"
 SOLUTIONS = "solutions"
-_CODEC = (BloscCodec(cname="lz4", clevel=1, shuffle="shuffle"),)
+# Spectra and pair sums are stored raw: blosc lz4 + shuffle made spectra only 1.08x and the
+# pair sums of one swath 1.4x smaller, for 1.7x the write and 1.9x the read time (measured
+# on the receiver pairs of a 50,000-trace swath, 49 MB: write 140 vs 83 ms, read 40 vs 21 ms).
+_CODEC = ()
 
 
 # -- spectra -------------------------------------------------------------
@@ -149,11 +151,15 @@ def _require(parent, name: str):
         return parent[name]
 
 
-def read_stats(store_path: str | Path, key: str, group: str) -> dict[str, np.ndarray]:
+def read_stats(store_path: str | Path, key: str, group: str,
+               names: tuple[str, ...] | None = None) -> dict[str, np.ndarray]:
+    """The arrays of one statistics group (only ``names`` when given)."""
     path = Path(store_path) / STATS / key / group
     if not (path / "zarr.json").is_file():
         raise InputNotFoundError(f"{store_path}: no statistics {key}/{group} (run 'descatter estimate')")
     g = zarr.open_group(str(store_path), path=f"{STATS}/{key}/{group}", mode="r")
+    if names is not None:
+        return {name: g[name][...] for name in names}
     return {name: arr[...] for name, arr in g.arrays()}
 
 

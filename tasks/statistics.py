@@ -18,20 +18,42 @@ import numpy as np
 from .errors import ConfigError
 
 
-def _merge_pairs(pairs_a, pairs_b):
-    """Union of two (n, 2) pair tables and the row of each input in it,
-    ordered lexicographically so the result does not depend on input order."""
-    both = np.concatenate([pairs_a, pairs_b], axis=0).astype(np.int64, copy=False)
-    if both.size and (both.min() < 0 or both.max() >= 2**31):
+def _row_keys(rows: np.ndarray) -> np.ndarray | None:
+    """One int64 key per row of a non-negative int table [n, 2], ``a * 2**32 + b``,
+    which sorts as the rows do; None when an entry is outside [0, 2**31)."""
+    rows = np.asarray(rows).astype(np.int64, copy=False)
+    if rows.size and (rows.min() < 0 or rows.max() >= 2**31):
+        return None
+    return rows[:, 0] * 2**32 + rows[:, 1]
+
+
+def _unique_sorted_runs(key: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``np.unique(key, return_inverse=True)`` for a key that is a few sorted runs
+    end to end (the tables of partial sums are each sorted): a stable argsort
+    (timsort, which merges runs in linear time) instead of the quicksort of
+    np.unique. Merging the log-power cross tables of 10 swaths of 50,000 traces
+    took 1.5 s of a 9 s solve with np.unique(axis=0)."""
+    order = np.argsort(key, kind="stable")
+    ordered = key[order]
+    first = np.ones(len(ordered), bool)
+    first[1:] = ordered[1:] != ordered[:-1]
+    inverse = np.empty(len(key), np.int64)
+    inverse[order] = np.cumsum(first) - 1
+    return ordered[first], inverse
+
+
+def _merge_rows(rows_a: np.ndarray, rows_b: np.ndarray):
+    """Union of two int tables [n, 2] (rows sorted, lexicographic order) and the
+    row of each input row in it, so the result does not depend on input order."""
+    both = np.concatenate([rows_a, rows_b], axis=0).astype(np.int64, copy=False)
+    key = _row_keys(both)
+    if key is None:
         union, inverse = np.unique(both, axis=0, return_inverse=True)
         inverse = inverse.reshape(-1)
-        return union, inverse[: len(pairs_a)], inverse[len(pairs_a):]
-    # one int64 key per row, a * 2**32 + b, sorts as the rows do: np.unique on it is much
-    # faster than np.unique(axis=0) (measured 8.3 -> 0.44 ms merging two tables of 6,000 pairs), same result
-    key = both[:, 0] * 2**32 + both[:, 1]
-    ukey, inverse = np.unique(key, return_inverse=True)
-    union = np.column_stack([ukey >> 32, ukey & (2**32 - 1)])
-    return union, inverse[: len(pairs_a)], inverse[len(pairs_a):]
+    else:
+        ukey, inverse = _unique_sorted_runs(key)
+        union = np.column_stack([ukey >> 32, ukey & (2**32 - 1)])
+    return union, inverse[: len(rows_a)], inverse[len(rows_a):]
 
 
 @dataclass
@@ -66,7 +88,7 @@ class PairSums:
         return self.cross.shape[1]
 
     def __add__(self, other: "PairSums") -> "PairSums":
-        union, ia, ib = _merge_pairs(self.pairs, other.pairs)
+        union, ia, ib = _merge_rows(self.pairs, other.pairs)
         out = PairSums.empty(self.n_freq)
         out.pairs = union
         out.cross = np.zeros((len(union), self.n_freq), np.complex128)
@@ -74,6 +96,44 @@ class PairSums:
         out.power_b = np.zeros((len(union), self.n_freq))
         out.count = np.zeros(len(union), np.int64)
         for idx, part in ((ia, self), (ib, other)):
+            out.cross[idx] += part.cross
+            out.power_a[idx] += part.power_a
+            out.power_b[idx] += part.power_b
+            out.count[idx] += part.count
+        return out
+
+    @classmethod
+    def total(cls, tables: list[np.ndarray], load, n_freq: int) -> "PairSums":
+        """The sum of many partials, each read only when it is added.
+
+        ``tables``: the pair tables [n_i, 2] of the parts, in the order to add;
+        ``load(i)``: part ``i`` (a PairSums whose ``pairs`` equal ``tables[i]``).
+        Equal, bit for bit, to ``((p0 + p1) + p2) + ...``: every entry gets
+        its parts' values added in that order. But the union of pairs is found
+        once and each part touches only its own rows, where the left fold
+        rewrote the whole running total at every step (0.86 of 1.4 s for the
+        receiver and source pairs of 10 swaths of 50,000 traces), and only one
+        part is in memory at a time.
+        """
+        if not tables:
+            return cls.empty(n_freq)
+        both = np.concatenate([np.asarray(t).reshape(-1, 2) for t in tables]).astype(np.int64, copy=False)
+        key = _row_keys(both)
+        if key is None:
+            union, inverse = np.unique(both, axis=0, return_inverse=True)
+            inverse = inverse.reshape(-1)
+        else:
+            ukey, inverse = _unique_sorted_runs(key)
+            union = np.column_stack([ukey >> 32, ukey & (2**32 - 1)])
+        out = cls(union, np.zeros((len(union), n_freq), np.complex128), np.zeros((len(union), n_freq)),
+                  np.zeros((len(union), n_freq)), np.zeros(len(union), np.int64))
+        start = 0
+        for i, table in enumerate(tables):
+            idx = inverse[start: start + len(table)]
+            start += len(table)
+            part = load(i)
+            if not np.array_equal(part.pairs, table):
+                raise ConfigError(f"PairSums.total: part {i} holds other pairs than its table")
             out.cross[idx] += part.cross
             out.power_a[idx] += part.power_a
             out.power_b[idx] += part.power_b
@@ -133,11 +193,11 @@ class LogPowerSums:
             sums[kind], counts[kind] = s, c
         cross = {}
         for key in sorted(set(self.cross) | set(other.cross)):
-            rows = np.concatenate([self.cross.get(key, np.zeros((0, 3), np.int64)),
-                                   other.cross.get(key, np.zeros((0, 3), np.int64))])
-            ij, inv = np.unique(rows[:, :2], axis=0, return_inverse=True)
-            cnt = np.zeros(len(ij), np.int64)
-            np.add.at(cnt, inv.reshape(-1), rows[:, 2])
+            a = self.cross.get(key, np.zeros((0, 3), np.int64))
+            b = other.cross.get(key, np.zeros((0, 3), np.int64))
+            ij, ia, ib = _merge_rows(a[:, :2], b[:, :2])
+            cnt = np.bincount(ia, weights=a[:, 2], minlength=len(ij)).astype(np.int64) \
+                + np.bincount(ib, weights=b[:, 2], minlength=len(ij)).astype(np.int64)
             cross[key] = np.column_stack([ij, cnt]).astype(np.int64)
         return LogPowerSums(sums, counts, cross, self.sum_sq + other.sum_sq, self.n_traces + other.n_traces)
 

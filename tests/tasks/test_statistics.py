@@ -90,27 +90,74 @@ def test_totals_of_pair_sets_add_up_and_edge_cases():
         noise_to_signal(whole[0], whole[1][:3])
 
 
-def test_merge_pairs_agrees_with_numpy_unique_on_rows():
-    from descatter.tasks.statistics import _merge_pairs
+def test_merge_rows_agrees_with_numpy_unique_on_rows():
+    from descatter.tasks.statistics import _merge_rows
 
     rng = np.random.default_rng(4)
     a = np.unique(np.sort(rng.integers(0, 300, (500, 2)), axis=1), axis=0)
     b = np.unique(np.sort(rng.integers(0, 300, (400, 2)), axis=1), axis=0)
-    union, ia, ib = _merge_pairs(a, b)
+    union, ia, ib = _merge_rows(a, b)
     # reference: numpy.unique over rows (lexicographic), the definition of the merged table
     ref, inv = np.unique(np.concatenate([a, b]), axis=0, return_inverse=True)
     assert np.array_equal(union, ref) and union.dtype == np.int64
     assert np.array_equal(ia, inv.reshape(-1)[: len(a)]) and np.array_equal(ib, inv.reshape(-1)[len(a):])
-    empty, ea, eb = _merge_pairs(np.zeros((0, 2), np.int64), np.zeros((0, 2), np.int64))
+    empty, ea, eb = _merge_rows(np.zeros((0, 2), np.int64), np.zeros((0, 2), np.int64))
     assert empty.shape == (0, 2) and ea.size == eb.size == 0
 
 
-def test_merge_pairs_outside_the_packed_range_falls_back_to_rows():
-    from descatter.tasks.statistics import _merge_pairs
+def test_merge_rows_outside_the_packed_range_falls_back_to_rows():
+    from descatter.tasks.statistics import _merge_rows
 
     a = np.array([[0, 2**31 + 5], [1, 2]], np.int64)  # a station index too large for the packed key
     b = np.array([[1, 2], [3, 4]], np.int64)
-    union, ia, ib = _merge_pairs(a, b)
+    union, ia, ib = _merge_rows(a, b)
     ref, inv = np.unique(np.concatenate([a, b]), axis=0, return_inverse=True)  # numpy.unique over rows
     assert np.array_equal(union, ref)
     assert np.array_equal(ia, inv.reshape(-1)[:2]) and np.array_equal(ib, inv.reshape(-1)[2:])
+
+
+def test_log_power_cross_tables_merge_like_numpy_unique_and_add_at():
+    from descatter.tasks.statistics import LogPowerSums
+
+    rng = np.random.default_rng(8)
+
+    def part(n_rows):
+        ij = np.unique(rng.integers(0, 400, (n_rows, 2)), axis=0)
+        rows = np.column_stack([ij, rng.integers(1, 50, len(ij))]).astype(np.int64)
+        return LogPowerSums({"source": np.ones((400, 3))}, {"source": np.ones(400, np.int64)},
+                            {"source|receiver": rows}, np.ones(3), 10)
+
+    a, b = part(900), part(700)
+    got = (a + b).cross["source|receiver"]
+    # reference: numpy.unique over rows, then numpy.add.at of the counts
+    both = np.concatenate([a.cross["source|receiver"], b.cross["source|receiver"]])
+    ij, inv = np.unique(both[:, :2], axis=0, return_inverse=True)
+    cnt = np.zeros(len(ij), np.int64)
+    np.add.at(cnt, inv.reshape(-1), both[:, 2])
+    assert np.array_equal(got, np.column_stack([ij, cnt])) and got.dtype == np.int64
+
+
+def test_total_of_many_parts_equals_the_left_fold_bit_for_bit():
+    from descatter.tasks.statistics import PairSums
+
+    rng = np.random.default_rng(21)
+
+    def part(n_rows, n_freq=5):
+        ij = np.unique(np.sort(rng.integers(0, 200, (n_rows, 2)), axis=1), axis=0)
+        ij = ij[ij[:, 0] != ij[:, 1]]
+        m = len(ij)
+        return PairSums(ij, rng.normal(size=(m, n_freq)) + 1j * rng.normal(size=(m, n_freq)),
+                        rng.random((m, n_freq)), rng.random((m, n_freq)), rng.integers(1, 9, m))
+
+    parts = [part(n) for n in (300, 50, 400, 1, 250)]
+    fold = parts[0]
+    for p in parts[1:]:
+        fold = fold + p
+    loaded = []
+    got = PairSums.total([p.pairs for p in parts], lambda i: loaded.append(i) or parts[i], 5)
+    assert loaded == [0, 1, 2, 3, 4]  # each part read once, in order
+    for name in ("pairs", "cross", "power_a", "power_b", "count"):
+        assert np.array_equal(getattr(got, name), getattr(fold, name)), name
+    assert PairSums.total([], None, 5).cross.shape == (0, 5)
+    with pytest.raises(ConfigError, match="part 1"):
+        PairSums.total([parts[0].pairs, parts[0].pairs], lambda i: parts[i], 5)
