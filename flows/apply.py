@@ -39,7 +39,7 @@ from descatter.tasks.wavelets import band_taper
 log = logging.getLogger(__name__)
 
 STAGE = "apply"
-STAGE_VERSION = 1
+STAGE_VERSION = 2  # 2: single-precision correction
 SOLUTION_ARRAYS = ("source_filter", "receiver_filter", "source_identity", "receiver_identity")
 
 
@@ -53,26 +53,42 @@ def _station_grid(solution: dict, kind: str, rows: np.ndarray, *, lead_s: float,
     return grid
 
 
-def correct_traces(sol: dict, attrs: dict, settings: dict, traces: np.ndarray, si: np.ndarray, ri: np.ndarray,
+GRID_BLOCK = 4096  # stations per block when building the grids (bounds the complex128 temporaries)
+
+
+def station_grids(sol: dict, attrs: dict, settings: dict) -> dict[str, np.ndarray]:
+    """Every station's response on the correction grid, complex64 [n, n_fft // 2 + 1]
+    per kind, and the identity flags: built once per solution and shared by
+    every chunk task (building them per chunk cost about 27 of 111 ms)."""
+    common = dict(lead_s=settings["lead_s"], dt_s=attrs["dt_s"], n_fft=settings["n_fft"],
+                  band_index=np.asarray(settings["band_index"], np.int64), taper_bins=settings["taper_bins"])
+    out = {}
+    for kind in ("source", "receiver"):
+        n = len(sol[f"{kind}_filter"])
+        grid = np.empty((n, settings["n_fft"] // 2 + 1), np.complex64)
+        for a in range(0, n, GRID_BLOCK):
+            rows = np.arange(a, min(a + GRID_BLOCK, n))
+            grid[rows] = _station_grid(sol, kind, rows, **common)
+        out[kind] = grid
+        out[f"{kind}_identity"] = np.asarray(sol[f"{kind}_identity"], bool)
+    return out
+
+
+def correct_traces(grids: dict, settings: dict, traces: np.ndarray, si: np.ndarray, ri: np.ndarray,
                    passthrough: np.ndarray) -> np.ndarray:
     """The corrected samples of ``traces`` (rows of one chunk) from the
-    solution's station filters; ``passthrough`` rows come back untouched."""
+    stations' responses (:func:`station_grids`); ``passthrough`` rows come
+    back untouched. Single precision: the samples are float32."""
     n_fft = settings["n_fft"]
-    dt = attrs["dt_s"]
     band_index = np.asarray(settings["band_index"], np.int64)
-    us, s_inv = np.unique(np.maximum(si, 0), return_inverse=True)
-    ur, r_inv = np.unique(np.maximum(ri, 0), return_inverse=True)
-    common = dict(lead_s=settings["lead_s"], dt_s=dt, n_fft=n_fft, band_index=band_index,
-                  taper_bins=settings["taper_bins"])
-    s_grid = _station_grid(sol, "source", us, **common)
-    r_grid = _station_grid(sol, "receiver", ur, **common)
     weight = grid_band_weight(band_index=band_index, n_rfft=n_fft // 2 + 1, taper=settings["taper_bins"])
     spectrum = settings.get("prewhitening_spectrum")  # per frequency on this grid, or None: one fraction
     prewhitening = settings["prewhitening"] if spectrum is None else np.asarray(spectrum, np.float64)
     corners = settings.get("shaping_hz")
-    shaping = band_taper(np.fft.rfftfreq(n_fft, dt), corners_hz=tuple(corners)) if corners else None
-    correction = trace_correction(s_grid, r_grid, s_inv.reshape(-1), r_inv.reshape(-1), mode=settings["mode"],
-                                  prewhitening=prewhitening, band_weight=weight, shaping=shaping)
+    shaping = band_taper(np.fft.rfftfreq(n_fft, settings["dt_s"]), corners_hz=tuple(corners)) if corners else None
+    correction = trace_correction(grids["source"], grids["receiver"], np.maximum(si, 0), np.maximum(ri, 0),
+                                  mode=settings["mode"], prewhitening=prewhitening, band_weight=weight,
+                                  shaping=shaping)
     return apply_correction(traces, correction, n_fft=n_fft, passthrough=passthrough)
 
 
@@ -95,7 +111,7 @@ def _rows_to_redo(applied: np.ndarray, si: np.ndarray, ri: np.ndarray, index: in
 
 
 def apply_chunk(store_path: str, swath: str, chunk: int, start: int, stop: int, solution_id: str, index: int,
-                settings: dict, fingerprint: str, changed: dict) -> dict:
+                settings: dict, fingerprint: str, changed: dict, grids: dict) -> dict:
     """One chunk: corrected traces written, then the flag. Idempotent.
 
     A chunk first corrected by an earlier solution (same settings) is
@@ -110,8 +126,7 @@ def apply_chunk(store_path: str, swath: str, chunk: int, start: int, stop: int, 
                 "passed": 0, "recomputed": 0}
     t0 = time.perf_counter()
     store = SurveyStore.open(store_path)
-    # only what this chunk needs: its own rows and the filters, not the whole solution
-    _, sol, attrs = read_solution(store, solution_id, names=SOLUTION_ARRAYS)
+    # only what this chunk needs: its own rows; the station responses come built (station_grids)
     si = store.array(swath, "geometry/source_index")[start:stop]
     ri = store.array(swath, "geometry/receiver_index")[start:stop]
     flags = store.array(swath, "qc_flags")[start:stop]
@@ -126,8 +141,8 @@ def apply_chunk(store_path: str, swath: str, chunk: int, start: int, stop: int, 
         traces = store.array(swath, "traces")[start:stop][redo]
         s, r = si[redo], ri[redo]
         passthrough = ~usable_traces(flags[redo], s, r, exclude_bits=settings["exclude_bits"])
-        passthrough |= sol["source_identity"][np.maximum(s, 0)] & sol["receiver_identity"][np.maximum(r, 0)]
-        corrected[redo] = correct_traces(sol, attrs, settings, traces, s, r, passthrough)
+        passthrough |= grids["source_identity"][np.maximum(s, 0)] & grids["receiver_identity"][np.maximum(r, 0)]
+        corrected[redo] = correct_traces(grids, settings, traces, s, r, passthrough)
         applied[redo] = index
         write_corrected_chunk(store_path, swath, start, corrected, applied)
         passed = int(passthrough.sum())
@@ -211,7 +226,7 @@ def correction_settings(store: SurveyStore, solution_id: str, attrs: dict, sol: 
         "band_hz": [lo, hi], "band_taper_hz": c.band_taper_hz, "shaping_hz": list(c.shaping_hz),
         "taper_bins": int(round(c.band_taper_hz / (f[1] - f[0]))), "n_fft": int(n_fft),
         "band_index": band_index.tolist(), "lead_s": attrs["config"]["estimate"]["filter_lead_s"],
-        "exclude_bits": int(config.qc.exclude_bits()), "warnings": warnings,
+        "exclude_bits": int(config.qc.exclude_bits()), "dt_s": dt, "warnings": warnings,
     }
 
 
@@ -242,6 +257,7 @@ def apply_solution(store_path: str | Path, config: SurveyConfig, *, client, solu
         fixed = {k: v for k, v in settings.items() if k not in per_solution}
         for w in settings["warnings"]:
             runlog.write(STAGE, "warning", message=w)
+        grids_f = None  # built and scattered once, when a chunk needs them
         for rec in records:
             fp = hashlib.blake2b(json.dumps({"v": STAGE_VERSION, "swath": rec.fingerprint, **fixed},
                                             sort_keys=True).encode(), digest_size=16).hexdigest()
@@ -262,9 +278,11 @@ def apply_solution(store_path: str | Path, config: SurveyConfig, *, client, solu
                         store, old_sid, sol, tolerance=tolerance, measured=settings["prewhitening_mode"] == "measured"),
                         hash=False)
                 changed_f[u] = masks[old_sid]
+            if grids_f is None:
+                grids_f = client.scatter(station_grids(sol, attrs, settings), hash=False, broadcast=True)
             for chunk, (a, b) in enumerate(rec.chunk_bounds()):
                 futures.append(client.submit(apply_chunk, str(store.path), rec.name, chunk, a, b, sid, index,
-                                             settings, fp, changed_f,
+                                             settings, fp, changed_f, grids_f,
                                              key=f"apply-{rec.name}-{chunk}-{fp[:8]}-{sid}", pure=False))
         runlog.write(STAGE, "start", solution=sid, chunks=len(futures), mode=settings["mode"],
                      prewhitening=settings["prewhitening"], reapply_tolerance=tolerance)

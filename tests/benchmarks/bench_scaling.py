@@ -242,31 +242,26 @@ def apply_breakdown(store_path: Path, cfg, calls: int = 3) -> dict:
     bounds = rec.chunk_bounds()[:calls]
     n_fft, dt = settings["n_fft"], attrs["dt_s"]
     band = np.asarray(settings["band_index"], np.int64)
-    common = dict(lead_s=settings["lead_s"], dt_s=dt, n_fft=n_fft, band_index=band, taper_bins=settings["taper_bins"])
+    grids = timed("station grids, once per solution (not per chunk)", lambda: fa.station_grids(sol_all, attrs, settings))
+    wall["station grids, once per solution (not per chunk)"] *= len(bounds)  # reported as is, not per call
+    cpu["station grids, once per solution (not per chunk)"] *= len(bounds)
     for i, (a, b) in enumerate(bounds):
         # a fingerprint of its own: the chunk is corrected again (the same samples)
         timed("the whole apply_chunk", lambda: fa.apply_chunk(path, name, i, a, b, sid, 0, settings,
-                                                              f"bench{i:027d}", {}))
-        sol = timed("read solution filters", lambda: read_solution(store, sid, names=fa.SOLUTION_ARRAYS)[1])
+                                                              f"bench{i:027d}", {}, grids))
         si = timed("read geometry + QC flags", lambda: store.array(name, "geometry/source_index")[a:b])
         ri = timed("read geometry + QC flags", lambda: store.array(name, "geometry/receiver_index")[a:b])
         flags = timed("read geometry + QC flags", lambda: store.array(name, "qc_flags")[a:b])
         traces = timed("read traces", lambda: store.array(name, "traces")[a:b])
         skip = ~usable_traces(flags, si, ri, exclude_bits=settings["exclude_bits"])
-        us, s_inv = np.unique(np.maximum(si, 0), return_inverse=True)
-        ur, r_inv = np.unique(np.maximum(ri, 0), return_inverse=True)
-        s_grid = timed("kernel station grids (filter_spectra, band_to_full_grid)",
-                       lambda: fa._station_grid(sol, "source", us, **common))
-        r_grid = timed("kernel station grids (filter_spectra, band_to_full_grid)",
-                       lambda: fa._station_grid(sol, "receiver", ur, **common))
         weight = corr.grid_band_weight(band_index=band, n_rfft=n_fft // 2 + 1, taper=settings["taper_bins"])
         spectrum = settings.get("prewhitening_spectrum")
         pw = settings["prewhitening"] if spectrum is None else np.asarray(spectrum, np.float64)
         corners = settings.get("shaping_hz")
         shaping = band_taper(np.fft.rfftfreq(n_fft, dt), corners_hz=tuple(corners)) if corners else None
         c = timed("kernel trace_correction", lambda: corr.trace_correction(
-            s_grid, r_grid, s_inv.reshape(-1), r_inv.reshape(-1), mode=settings["mode"], prewhitening=pw,
-            band_weight=weight, shaping=shaping))
+            grids["source"], grids["receiver"], np.maximum(si, 0), np.maximum(ri, 0), mode=settings["mode"],
+            prewhitening=pw, band_weight=weight, shaping=shaping))
         out = timed("kernel apply_correction", lambda: corr.apply_correction(traces, c, n_fft=n_fft, passthrough=skip))
         timed("write corrected chunk (+ its solution index)",
               lambda: write_corrected_chunk(path, name, a, out, np.zeros(b - a, np.int32)))

@@ -389,3 +389,27 @@ def test_filter_spectra_matches_a_direct_dft():
     t = np.arange(20) * dt - lead
     ref = h @ np.exp(-2j * np.pi * np.outer(t, f))
     assert np.allclose(got, ref, atol=1e-10)
+
+
+def test_single_precision_path_matches_double_to_float32_rounding():
+    """complex64 station responses keep the correction and its application in single
+    precision; against the float64 path the traces differ by float32 rounding only."""
+    rng = np.random.default_rng(31)
+    n, ns, n_fft = 300, 250, 400
+    n_rfft = n_fft // 2 + 1
+    s = np.exp(0.3 * rng.normal(size=(20, n_rfft)) + 1j * rng.uniform(-3, 3, (20, n_rfft)))
+    r = np.exp(0.3 * rng.normal(size=(30, n_rfft)) + 1j * rng.uniform(-3, 3, (30, n_rfft)))
+    si, ri = rng.integers(0, 20, n), rng.integers(0, 30, n)
+    w = np.clip(np.linspace(-1, 3, n_rfft), 0, 1)
+    pw = np.linspace(0.05, 0.5, n_rfft)
+    traces = rng.normal(size=(n, ns)).astype(np.float32)
+    kw = dict(mode="full", prewhitening=pw, band_weight=w, shaping=np.linspace(1, 0.5, n_rfft))
+    f64 = trace_correction(s, r, si, ri, **kw)
+    f32 = trace_correction(s.astype(np.complex64), r.astype(np.complex64), si, ri, **kw)
+    assert f64.dtype == np.complex128 and f32.dtype == np.complex64
+    assert np.max(np.abs(f32 - f64)) <= 1e-5 * np.max(np.abs(f64))
+    y64 = apply_correction(traces, f64, n_fft=n_fft)
+    y32 = apply_correction(traces, f32, n_fft=n_fft)
+    assert y32.dtype == np.float32
+    rel = np.sqrt(np.mean((y32 - y64) ** 2) / np.mean(y64.astype(np.float64) ** 2))
+    assert 0 < rel < 1e-5  # not the same code path, but only rounding apart
