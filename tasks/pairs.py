@@ -363,7 +363,10 @@ def _accumulate(spectra: np.ndarray, pairs: np.ndarray, p, ta, tb, g, tie) -> Pa
     segment = np.cumsum(head) - 1  # output row of each product
     rank = np.arange(len(p)) - first[segment]
     n_out = len(first)
-    d = np.ascontiguousarray(spectra, dtype=np.complex128)
+    # products in the spectra's own precision (complex64 from windowed_spectra), sums in complex128
+    d = np.ascontiguousarray(spectra)
+    if d.dtype != np.complex64:
+        d = d.astype(np.complex128)
     d_conj = np.conjugate(d)
     cross = np.empty((n_out, n_freq), np.complex128)
     later = np.flatnonzero(rank > 0)

@@ -73,11 +73,16 @@ def _loop_pair_sums(spectra, group, station, pairs, live):
     return out
 
 
-def _assert_sums_equal(got: PairSums, want: dict, rtol=1e-12):
+def _assert_sums_equal(got: PairSums, want: dict, rtol=1e-6):
+    """The kernel multiplies complex64 spectra in complex64 and sums in complex128; the
+    loop multiplies in complex128 (exact for float32 inputs). So they agree to float32
+    rounding of each product: relative to the powers, and for the cross sums relative to
+    their Cauchy-Schwarz bound sqrt(power_a power_b) (a sum of unlike products can cancel)."""
     assert [tuple(p) for p in got.pairs] == sorted(want)
     for row, key in enumerate(sorted(want)):
         cross, pa, pb, count = want[key]
-        np.testing.assert_allclose(got.cross[row], cross, rtol=rtol, atol=1e-12)
+        bound = np.sqrt(pa * pb)
+        assert np.all(np.abs(got.cross[row] - cross) <= rtol * bound + 1e-30), key
         np.testing.assert_allclose(got.power_a[row], pa, rtol=rtol)
         np.testing.assert_allclose(got.power_b[row], pb, rtol=rtol)
         assert got.count[row] == count
