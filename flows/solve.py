@@ -199,6 +199,8 @@ def solve_stations(store: SurveyStore, config: SurveyConfig, freqs: np.ndarray, 
         "receiver_identity": int(arrays["receiver_identity"].sum()),
         "source_identity": int(arrays["source_identity"].sum()),
         "amplitude_residual_rms": float(np.mean(amp.residual_rms)),
+        "amplitude_method": amp.method, "amplitude_iterations": int(amp.iterations),
+        "amplitude_converged": bool(np.all(amp.converged)),
         "receiver_phase_residual": float(np.mean(rph.residual)),
         "source_phase_residual": float(np.mean(sph.residual)),
         "noise_to_signal_median": float(np.nanmedian(nu)) if np.any(np.isfinite(nu)) else None,
@@ -242,6 +244,9 @@ def estimate_survey(store_path, config: SurveyConfig, *, client, progress=None) 
             if summary[f"{kind}_components"] > 1:
                 warnings.append(f"the {kind} graph falls into {summary[f'{kind}_components']} components, "
                                 "each with its own gauge: statics may be offset between them")
+        if not summary["amplitude_converged"]:
+            warnings.append(f"the amplitude solve ({summary['amplitude_method']}) did not converge at "
+                            "every frequency: station amplitudes there are the best iterate, not the solution")
         for b in stats.bridges:
             warnings.append(f"bridged {b['kind']} components {b.get('component_a')} and {b.get('component_b')} "
                             f"across {b.get('distance_m', 0):.1f} m")

@@ -46,6 +46,22 @@ def test_solve_benchmark_full_size():
     bench_solve.run()
 
 
+def test_solve_benchmark_patch_prints_direct_and_auto_at_tiny_size():
+    buf = io.StringIO()
+    rows = bench_solve.run_patch(sizes=(300, 700), n_freq=2, direct_timeout=60.0, out=buf)
+    text = buf.getvalue()
+    assert "growth exponent" in text and "auto (cg" in text
+    # 300 stations stay below the dense threshold (direct), 700 go to CG; both agree with direct
+    assert rows[300]["auto_method"] == "direct" and rows[700]["auto_method"] == "cg"
+    assert all(not r["direct_stopped"] and r["diff"] < 1e-7 and r["truth_err"] < 1e-7 for r in rows.values())
+    assert all(r["auto"] > 0 and r["direct_mb"] >= 0 for r in rows.values())
+
+
+@pytest.mark.benchmark
+def test_solve_benchmark_patch_full_size():
+    bench_solve.run_patch()
+
+
 def test_estimate_benchmark_prints_ratios_at_tiny_size():
     buf = io.StringIO()
     r = bench_estimate.run(n_traces=None, size="tiny", workers=1, calls=1, repeat=1, out=buf)

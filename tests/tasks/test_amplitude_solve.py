@@ -8,6 +8,8 @@ and Cary & Lorentz (1993) on noise-free synthetic log amplitudes.
 
 from __future__ import annotations
 
+import logging
+
 import numpy as np
 import pytest
 import scipy.sparse as sp
@@ -15,7 +17,9 @@ from scipy.linalg import null_space
 from scipy.sparse.csgraph import connected_components
 from scipy.sparse.linalg import lsqr
 
-from descatter.tasks.amplitude_solve import _dense_unknowns, amplitude_solve
+from descatter.tasks import amplitude_solve as amplitude_module
+from descatter.tasks.amplitude_solve import (AUTO_MAX_COUPLINGS, AUTO_MAX_DENSE, _active_matrix, _auto_method,
+                                             _dense_unknowns, _normal_equations, amplitude_solve)
 from descatter.tasks.errors import ConfigError, GeometryError
 from descatter.tasks.statistics import LogPowerSums
 from descatter.tasks.synthetic import station_truth, stations, swath_traces, synthetic_spec
@@ -312,6 +316,141 @@ def test_input_errors_say_what_is_wrong():
     flipped["receiver|source"] = t[:, [1, 0, 2]]
     same = amplitude_solve(LogPowerSums(sums.sums, sums.counts, flipped, sums.sum_sq, sums.n_traces))
     np.testing.assert_allclose(same.source, amplitude_solve(sums).source, atol=1e-12)
+
+
+# --------------------------------------------------------------------------- method choice, CG robustness
+
+
+def sums_fast(index: dict, sizes: dict, values: np.ndarray) -> LogPowerSums:
+    """The same sums as sums_of, vectorised (sparse 0/1 design blocks, np.unique cross counts)."""
+    kinds = list(index)
+    n = len(values)
+    block = {k: sp.csr_matrix((np.ones(n), (np.arange(n), index[k])), shape=(n, sizes[k])) for k in kinds}
+    sums = {k: np.asarray(block[k].T @ values) for k in kinds}
+    counts = {k: np.bincount(index[k], minlength=sizes[k]).astype(np.int64) for k in kinds}
+    cross = {}
+    for i, a in enumerate(kinds):
+        for b in kinds[i + 1:]:
+            key, c = np.unique(index[a] * sizes[b] + index[b], return_counts=True)
+            cross[f"{a}|{b}"] = np.column_stack([key // sizes[b], key % sizes[b], c]).astype(np.int64)
+    return LogPowerSums(sums, counts, cross, (values**2).sum(axis=0), n)
+
+
+def patch(n: int, radius: float, seed: int = 0):
+    """A 3D patch: receivers on a square grid (half the stations), sources at random positions,
+    every shot recording the receivers within ``radius`` grid steps, offset bins of 2 steps."""
+    rng = np.random.default_rng(seed)
+    side = int(round(np.sqrt(n / 2)))
+    rx, ry = np.divmod(np.arange(side * side), side)
+    n_src = n - side * side
+    sx, sy = rng.uniform(0, side - 1, n_src), rng.uniform(0, side - 1, n_src)
+    dist = np.hypot(sx[:, None] - rx[None], sy[:, None] - ry[None])
+    src, rcv = np.nonzero(dist <= radius)
+    off = (dist[src, rcv] / 2.0).astype(np.int64)
+    index = {"source": src, "receiver": rcv, "offset": off}
+    return index, {"source": n_src, "receiver": side * side, "offset": int(off.max()) + 1}
+
+
+def test_vectorised_sums_equal_the_trace_loop():
+    rng = np.random.default_rng(20)
+    index, sizes = random_survey(rng, 9, 13, 4, 300)
+    values = rng.standard_normal((300, 3))
+    a, b = sums_of(index, sizes, values), sums_fast(index, sizes, values)
+    for k in index:
+        np.testing.assert_allclose(b.sums[k], a.sums[k], atol=1e-12)
+        np.testing.assert_array_equal(b.counts[k], a.counts[k])
+    assert all(np.array_equal(b.cross[k], a.cross[k]) for k in a.cross)
+
+
+def test_auto_keeps_the_direct_solve_where_it_is_cheap():
+    rng = np.random.default_rng(21)
+    sparse_case = random_survey(rng, 110, 200, 3, 1500)  # a few dense offset bins, few couplings
+    dense_case = patch(300, radius=24.0)                  # every unknown dense, but fewer than the threshold
+    for index, sizes in (sparse_case, dense_case):
+        sums = sums_fast(index, sizes, rng.standard_normal((len(index["source"]), 3)))
+        auto, direct = amplitude_solve(sums), amplitude_solve(sums, method="direct")
+        assert auto.method == "direct" and auto.iterations == 0 and auto.converged.all()
+        np.testing.assert_array_equal(stacked(auto, auto.terms), stacked(direct, direct.terms))
+        assert auto.relative_residual.max() < 1e-12  # the exact solve of the pinned system solves all of N x = b
+    dense = _dense_unknowns(_active_matrix(_normal_equations(sums, ("source", "receiver", "offset"))))
+    assert 100 < dense.sum() <= AUTO_MAX_DENSE and dense.mean() > 0.9
+
+
+def test_auto_takes_cg_on_a_densely_coupled_patch():
+    index, sizes = patch(700, radius=24.0)  # shots record most receivers: every unknown dense
+    rng = np.random.default_rng(22)
+    truth = {k: rng.standard_normal((sizes[k], 3)) for k in sizes}
+    clean = sum(truth[k][index[k]] for k in sizes)
+    noisy = clean + 0.3 * rng.standard_normal(clean.shape)
+    sums = sums_fast(index, sizes, noisy)
+    assert _dense_unknowns(_active_matrix(_normal_equations(sums, ("source", "receiver", "offset")))).sum() \
+        > AUTO_MAX_DENSE
+    auto, direct = amplitude_solve(sums), amplitude_solve(sums, method="direct")
+    assert auto.method == "cg" and 0 < auto.iterations < 100 and auto.converged.all()
+    assert auto.relative_residual.max() <= 1e-10
+    # same gauge and the same least-squares answer as the direct solve, to the CG tolerance
+    np.testing.assert_allclose(stacked(auto, auto.terms), stacked(direct, direct.terms), atol=1e-7)
+    np.testing.assert_allclose(auto.residual_rms, direct.residual_rms, rtol=1e-8)
+    np.testing.assert_allclose(auto.source.mean(axis=0), 0.0, atol=1e-12)
+    np.testing.assert_allclose(auto.receiver.mean(axis=0), 0.0, atol=1e-12)
+    # Taner & Koehler (1981): noise-free data give back the planted terms (in the gauge)
+    exact = amplitude_solve(sums_fast(index, sizes, clean))
+    ms, mr = truth["source"].mean(axis=0), truth["receiver"].mean(axis=0)
+    assert exact.method == "cg"
+    np.testing.assert_allclose(exact.source, truth["source"] - ms, atol=1e-7)
+    np.testing.assert_allclose(exact.receiver, truth["receiver"] - mr, atol=1e-7)
+    np.testing.assert_allclose(exact.offset, truth["offset"] + ms + mr, atol=1e-7)
+
+
+def test_auto_takes_cg_where_sparse_unknowns_meet_many_others(monkeypatch):
+    index, sizes = patch(2500, radius=5.0)  # ~80 couplings per station, only offset bins dense
+    rng = np.random.default_rng(23)
+    sums = sums_fast(index, sizes, rng.standard_normal((len(index["source"]), 2)))
+    active = _active_matrix(_normal_equations(sums, ("source", "receiver", "offset")))
+    assert _dense_unknowns(active).sum() <= 10
+    auto, direct = amplitude_solve(sums), amplitude_solve(sums, method="direct")
+    assert auto.method == "cg" and auto.iterations > 0 and auto.converged.all()
+    np.testing.assert_allclose(stacked(auto, auto.terms), stacked(direct, direct.terms), atol=1e-6)
+    # the coupling count decides: with a higher limit the same survey stays direct
+    monkeypatch.setattr(amplitude_module, "AUTO_MAX_COUPLINGS", 10 * AUTO_MAX_COUPLINGS)
+    assert _auto_method(active) == "direct" and amplitude_solve(sums).method == "direct"
+
+
+def test_cg_that_stops_short_is_flagged_and_logged(caplog):
+    index, sizes = patch(400, radius=24.0)
+    rng = np.random.default_rng(24)
+    sums = sums_fast(index, sizes, rng.standard_normal((len(index["source"]), 3)))
+    with caplog.at_level(logging.WARNING, logger="descatter.tasks.amplitude_solve"):
+        ok = amplitude_solve(sums, method="cg")
+    assert ok.converged.all() and ok.relative_residual.max() <= 1e-10 and not caplog.records
+    with caplog.at_level(logging.WARNING, logger="descatter.tasks.amplitude_solve"):
+        short = amplitude_solve(sums, method="cg", maxiter=2)
+    assert short.method == "cg" and short.iterations == 2 and not short.converged.any()
+    assert np.all(short.relative_residual > 1e-6)
+    assert len(caplog.records) == 1 and "did not reach tol" in caplog.records[0].getMessage()
+    assert "3 of 3 frequencies" in caplog.records[0].getMessage()
+
+
+def test_undamped_cg_stops_early_when_the_rhs_leaves_the_range(caplog):
+    # N is singular without damping; sums that do not come from one set of traces put part of
+    # A^T L in its null space, where no x can reach. CG must stop (breakdown or stagnation)
+    # long before maxiter, flag the columns and keep its best iterate, not a diverged one.
+    index, sizes = patch(400, radius=24.0)
+    rng = np.random.default_rng(25)
+    good = sums_fast(index, sizes, rng.standard_normal((len(index["source"]), 2)))
+    bad = LogPowerSums({k: v.copy() for k, v in good.sums.items()}, good.counts, good.cross, good.sum_sq,
+                       good.n_traces)
+    bad.sums["source"][3] += 1.0
+    with caplog.at_level(logging.WARNING, logger="descatter.tasks.amplitude_solve"):
+        sol = amplitude_solve(bad, method="cg", maxiter=5000)
+    assert not sol.converged.any() and sol.iterations < 500 and "did not reach tol" in caplog.text
+    assert np.all(np.isfinite(sol.relative_residual)) and sol.relative_residual.max() < 1e-3
+    reference = amplitude_solve(good, method="direct")
+    assert np.abs(stacked(sol, sol.terms) - stacked(reference, reference.terms)).max() < 0.5
+    # a tolerance below rounding cannot be met either: flagged, and the answer is still the right one
+    tight = amplitude_solve(good, method="cg", tol=1e-17)
+    assert not tight.converged.any() and tight.iterations < 500
+    np.testing.assert_allclose(stacked(tight, tight.terms), stacked(reference, reference.terms), atol=1e-9)
 
 
 # --------------------------------------------------------------------------- from pair cross-spectra
