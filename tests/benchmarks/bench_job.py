@@ -263,16 +263,16 @@ def single_process_job(files, config_path: Path, out_dir: Path, block: int = 409
     if c.mode == "full" and c.prewhitening_mode == "measured" and np.all(np.isfinite(nu)) and len(band):
         prewhitening = corr.prewhitening_spectrum(nu, band_hz=freqs, grid_hz=f, scale=c.prewhitening_scale)
     shaping = band_taper(f, corners_hz=tuple(c.shaping_hz)) if c.shaping_hz else None  # optional target band
+    # every station's response once, in single precision like the samples (as descatter does)
+    s_grid = grid(s_filter, s_identity, np.arange(len(s_filter))).astype(np.complex64)
+    r_grid = grid(r_filter, r_identity, np.arange(len(r_filter))).astype(np.complex64)
     for sw in swaths:
         sw["corrected"] = np.empty_like(sw["traces"])
         for b0 in range(0, len(sw["traces"]), block):
             sl = slice(b0, b0 + block)
             si, ri = np.maximum(sw["source_index"][sl], 0), np.maximum(sw["receiver_index"][sl], 0)
             skip = ~sw["live"][sl] | (s_identity[si] & r_identity[ri])
-            us, s_inv = np.unique(si, return_inverse=True)
-            ur, r_inv = np.unique(ri, return_inverse=True)
-            spectrum = corr.trace_correction(grid(s_filter, s_identity, us), grid(r_filter, r_identity, ur),
-                                             s_inv.reshape(-1), r_inv.reshape(-1), mode=c.mode,
+            spectrum = corr.trace_correction(s_grid, r_grid, si, ri, mode=c.mode,
                                              prewhitening=prewhitening, band_weight=weight, shaping=shaping)
             sw["corrected"][sl] = corr.apply_correction(sw["traces"][sl], spectrum, n_fft=nc, passthrough=skip)
     clock.lap("apply")
