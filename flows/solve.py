@@ -11,11 +11,12 @@ attributes become a solution under ``solutions/<id>``.
 from __future__ import annotations
 
 import logging
+import time
 from dataclasses import dataclass, field
 
 import numpy as np
 
-from descatter.flows.estimate import lps_from_arrays
+from descatter.flows.estimate import Timed, lps_from_arrays
 from descatter.storage.estimation import has_stats, read_solution, read_stats
 from descatter.storage.stations import read_stations
 from descatter.storage.store import SurveyStore
@@ -43,14 +44,20 @@ class Totals:
     keys: list[str] = field(default_factory=list)
 
 
-def load_totals(store: SurveyStore) -> Totals:
-    """Sum every swath's statistics (and swath pairs') in manifest order:
-    per swath its own receiver pairs, its own source pairs, then the source
-    pairs it shares with each earlier swath. Pair sums are read one part at
-    a time (only the pair tables of all parts are held together)."""
+@dataclass
+class StatsKeys:
+    """Which statistics a solve sums, in manifest order: per swath its own
+    receiver pairs, its own source pairs, then the source pairs it shares
+    with each earlier swath."""
+
+    swaths: list[str]
+    source: list[str]  # the swaths' own keys and the "a+b" keys
+    all: list[str]
+
+
+def stats_keys(store: SurveyStore) -> StatsKeys:
     names = store.swath_names()
     keys, source_keys = [], []
-    lp = None
     for i, name in enumerate(names):
         keys.append(name)
         source_keys.append(name)
@@ -59,15 +66,31 @@ def load_totals(store: SurveyStore) -> Totals:
             if has_stats(store.path, key, "source_pairs"):
                 source_keys.append(key)
                 keys.append(key)
-        l = lps_from_arrays(read_stats(store.path, name, "log_power"))
-        lp = l if lp is None else lp + l
-    n_freq = lp.sum_sq.shape[0] if lp is not None else 0
+    return StatsKeys(names, source_keys, keys)
 
-    def total(group: str, parts: list[str]) -> PairSums:
-        tables = [read_stats(store.path, k, group, names=("pairs",))["pairs"] for k in parts]
-        return PairSums.total(tables, lambda i: PairSums.from_arrays(read_stats(store.path, parts[i], group)), n_freq)
 
-    return Totals(total("receiver_pairs", names), total("source_pairs", source_keys), lp, keys)
+def pair_total(store_path, group: str, keys: list[str], n_freq: int) -> PairSums:
+    """The pair sums ``group`` of ``keys`` added in order, one part read at a
+    time (only the pair tables of all parts are held together)."""
+    tables = [read_stats(store_path, k, group, names=("pairs",))["pairs"] for k in keys]
+    return PairSums.total(tables, lambda i: PairSums.from_arrays(read_stats(store_path, keys[i], group)), n_freq)
+
+
+def log_power_total(store_path, names: list[str]) -> LogPowerSums:
+    lp = None
+    for name in names:
+        part = lps_from_arrays(read_stats(store_path, name, "log_power"))
+        lp = part if lp is None else lp + part
+    return lp
+
+
+def load_totals(store: SurveyStore) -> Totals:
+    """Sum every swath's statistics (and swath pairs') in manifest order."""
+    keys = stats_keys(store)
+    lp = log_power_total(store.path, keys.swaths)
+    n_freq = lp.sum_sq.shape[0]
+    return Totals(pair_total(store.path, "receiver_pairs", keys.swaths, n_freq),
+                  pair_total(store.path, "source_pairs", keys.source, n_freq), lp, keys.all)
 
 
 def _phase_weight(p: PairSums) -> np.ndarray:
@@ -75,17 +98,64 @@ def _phase_weight(p: PairSums) -> np.ndarray:
     return p.coherence() * p.count[:, None]
 
 
-def _phases(client, pairs: PairSums, n_stations: int, method: str, initial: np.ndarray | None = None):
-    weight = _phase_weight(pairs)
-    n_freq = pairs.n_freq
-    blocks = [slice(a, min(a + FREQ_BLOCK, n_freq)) for a in range(0, n_freq, FREQ_BLOCK)]
-    if client is None or len(blocks) == 1:
-        return phase_sync(pairs.pairs, pairs.cross, weight, n_stations=n_stations, method=method, initial=initial)
-    p_f, c_f, w_f = client.scatter([pairs.pairs, pairs.cross, weight], hash=False)
-    i_f = None if initial is None else client.scatter(initial, hash=False)
-    futures = [client.submit(phase_sync, p_f, c_f, w_f, n_stations=n_stations, method=method, columns=b,
-                             initial=i_f, pure=False) for b in blocks]
-    return concat_phase_solutions(client.gather(futures))
+@dataclass
+class PairTotal:
+    """One pair kind's sums ready for the solve: smoothed over frequency, the
+    phase-solve weight, and the unsmoothed coherence totals (noise level)."""
+
+    sums: PairSums
+    weight: np.ndarray
+    coherent: np.ndarray
+    total: np.ndarray
+
+
+def prepared_pairs(store_path, group: str, keys: list[str], n_freq: int, bin_hz: float,
+                   smoothing_hz: float) -> PairTotal:
+    """Read and sum one pair kind, take its coherence totals, then smooth it."""
+    p = pair_total(store_path, group, keys, n_freq)
+    # The traces' noise-to-signal ratio per frequency, for the correction's prewhitening, comes
+    # from the unsmoothed sums: smoothing over frequency lowers |cross| wherever the relative
+    # phase of a pair turns with frequency (a relative static), which would read as noise.
+    coherent, total = coherence_totals(p.cross, p.power_a, p.power_b)
+    if smoothing_hz > 0 and n_freq > 1:
+        # Windows longer than the station filters give finer spectra than the filters need, and
+        # each bin of a pair sum brings its own noise: smooth the sums over frequency (a lag window,
+        # tasks.pairs.smooth_over_frequency). Measured with 2 Hz, median correlation of the
+        # relative receiver filters with the truth: tiny 0.77 -> 0.84, demo 0.83 -> 0.89.
+        p = smooth_pair_sums(p, bin_hz=bin_hz, half_width_hz=smoothing_hz)
+    return PairTotal(p, _phase_weight(p), coherent, total)
+
+
+def phase_block(pt: PairTotal, n_stations: int, method: str, columns: slice, initial: np.ndarray | None):
+    return phase_sync(pt.sums.pairs, pt.sums.cross, pt.weight, n_stations=n_stations, method=method,
+                      columns=columns, initial=initial)
+
+
+def kind_solution(kind: str, amp, pt: PairTotal, blocks: list, n: int, freqs: np.ndarray, config: SurveyConfig,
+                  dt_s: float, n_fft: int) -> tuple[dict, dict]:
+    """One station kind's response, filters and attributes from the amplitude
+    solution and its frequency blocks of phases; and the phase summary."""
+    amp_term = np.zeros((n, len(freqs)))
+    solved = amp.receiver if kind == "receiver" else amp.source
+    amp_term[: len(solved)] = solved
+    # The spectral shapes from the pair magnitudes, which noise does not bias the way it biases
+    # log |D|^2; the log-power terms hold what the pairs leave open (pair_amplitude_solve notes).
+    p = pt.sums
+    amp_term = pair_amplitude_solve(p.pairs, p.cross, p.count, prior=amp_term)
+    phase = concat_phase_solutions(blocks)
+    arrays = station_attributes(kind, amp_term, phase, p, n, freqs, config, dt_s, n_fft)
+    arrays[f"{kind}_phase_residual"] = phase.residual
+    return arrays, {"components": int(phase.n_components), "residual": float(np.mean(phase.residual))}
+
+
+def amplitude_summary(amp) -> dict:
+    """What the driver keeps of the amplitude solve."""
+    return {"residual_rms": amp.residual_rms, "method": amp.method, "iterations": int(amp.iterations),
+            "converged": bool(np.all(amp.converged))}
+
+
+def noise_totals(pt: PairTotal) -> tuple[np.ndarray, np.ndarray]:
+    return pt.coherent, pt.total
 
 
 def warm_start(store: SurveyStore, freqs: np.ndarray, sizes: dict[str, int]) -> dict[str, np.ndarray]:
@@ -148,61 +218,99 @@ def station_attributes(kind: str, amp_term: np.ndarray, phase, pairs: PairSums, 
     return {f"{kind}_{k}": v for k, v in out.items()}
 
 
-def solve_stations(store: SurveyStore, config: SurveyConfig, freqs: np.ndarray, n_fft: int, *, client=None):
-    """The global solve: arrays of a solution and a summary dict."""
-    totals = load_totals(store)
-    # The traces' noise-to-signal ratio per frequency, for the correction's prewhitening, from the
-    # unsmoothed sums: smoothing over frequency lowers |cross| wherever the relative phase of a pair
-    # turns with frequency (a relative static), which would read as noise.
-    coherent = total = 0.0
-    for p in (totals.receiver_pairs, totals.source_pairs):
-        c, t = coherence_totals(p.cross, p.power_a, p.power_b)
-        coherent, total = coherent + c, total + t
-    nu = noise_to_signal(coherent, total)
-    smoothing = config.estimate.smoothing_hz
-    if smoothing > 0 and len(freqs) > 1:
-        # Windows longer than the station filters give finer spectra than the filters need, and
-        # each bin of a pair sum brings its own noise: smooth the sums over frequency (a lag window,
-        # tasks.pairs.smooth_over_frequency). Measured with 2 Hz, median correlation of the
-        # relative receiver filters with the truth: tiny 0.77 -> 0.84, demo 0.83 -> 0.89.
-        df = float(freqs[1] - freqs[0])
-        totals.receiver_pairs = smooth_pair_sums(totals.receiver_pairs, bin_hz=df, half_width_hz=smoothing)
-        totals.source_pairs = smooth_pair_sums(totals.source_pairs, bin_hz=df, half_width_hz=smoothing)
-    n_src = len(read_stations(store, "sources")["key"])
-    n_rcv = len(read_stations(store, "receivers")["key"])
-    lp = totals.log_power
-    terms = ("source", "receiver", "offset") + (("cmp",) if config.estimate.cmp_bin_m > 0 else ())
-    amp = amplitude_solve(lp, terms=terms)
-    src_amp = np.zeros((n_src, len(freqs)))
-    rcv_amp = np.zeros((n_rcv, len(freqs)))
-    src_amp[: len(amp.source)] = amp.source
-    rcv_amp[: len(amp.receiver)] = amp.receiver
-    # The spectral shapes from the pair magnitudes, which noise does not bias the way it biases
-    # log |D|^2; the log-power terms hold what the pairs leave open (pair_amplitude_solve notes).
-    rp, sp = totals.receiver_pairs, totals.source_pairs
-    rcv_amp = pair_amplitude_solve(rp.pairs, rp.cross, rp.count, prior=rcv_amp)
-    src_amp = pair_amplitude_solve(sp.pairs, sp.cross, sp.count, prior=src_amp)
-    method = config.estimate.phase_method
-    warm = warm_start(store, freqs, {"receiver": n_rcv, "source": n_src}) if method == "eigen" else {}
-    rph = _phases(client, totals.receiver_pairs, n_rcv, method, warm.get("receiver"))
-    sph = _phases(client, totals.source_pairs, n_src, method, warm.get("source"))
+def _plain(x):
+    if isinstance(x, Timed):
+        return x.value
+    if isinstance(x, list):
+        return [_plain(v) for v in x]
+    return x
+
+
+def timed_call(fn, *args, **kwargs) -> Timed:
+    """``fn`` on the values of any Timed arguments (also inside lists), timed."""
+    t0 = time.perf_counter()
+    value = fn(*(_plain(a) for a in args), **{k: _plain(v) for k, v in kwargs.items()})
+    return Timed(value, time.perf_counter() - t0)
+
+
+def _seconds(t: Timed) -> float:
+    return t.seconds
+
+
+def solve_stations(store: SurveyStore, config: SurveyConfig, freqs: np.ndarray, n_fft: int, *, client=None,
+                   runlog=None):
+    """The global solve: arrays of a solution and a summary dict.
+
+    With a client it runs as a small graph of tasks on the workers (the sums
+    of each pair kind and of the log power, the amplitude solve, blocks of
+    frequencies of each phase solve, each kind's filters and attributes), so
+    the driver holds no survey-sized array and both workers share the work;
+    each task's seconds go to ``runlog`` as a ``solve`` batch record.
+    Without a client the same functions run in this process.
+    """
+    keys = stats_keys(store)
+    n_freq = len(freqs)
+    bin_hz = float(freqs[1] - freqs[0]) if n_freq > 1 else 1.0
+    est = config.estimate
+    sizes = {"receiver": len(read_stations(store, "receivers")["key"]),
+             "source": len(read_stations(store, "sources")["key"])}
+    terms = ("source", "receiver", "offset") + (("cmp",) if est.cmp_bin_m > 0 else ())
+    method = est.phase_method
+    warm = warm_start(store, freqs, sizes) if method == "eigen" else {}
     dt = store.sample_interval_s
-    arrays = {"freq_hz": freqs, "amplitude_residual_rms": amp.residual_rms,
-              "receiver_phase_residual": rph.residual, "source_phase_residual": sph.residual,
-              "noise_to_signal": nu}
-    arrays |= station_attributes("source", src_amp, sph, totals.source_pairs, n_src, freqs, config, dt, n_fft)
-    arrays |= station_attributes("receiver", rcv_amp, rph, totals.receiver_pairs, n_rcv, freqs, config, dt, n_fft)
+    path = str(store.path)
+    blocks = [slice(a, min(a + FREQ_BLOCK, n_freq)) for a in range(0, n_freq, FREQ_BLOCK)]
+    if client is None or len(blocks) == 1:
+        blocks = [slice(None)]
+    parts: list[tuple[str, object]] = []
+
+    def run(name, fn, *args, **kwargs):
+        out = timed_call(fn, *args, **kwargs) if client is None else \
+            client.submit(timed_call, fn, *args, pure=False, **kwargs)
+        parts.append((name, out))
+        return out
+
+    def fetch(fn, x):
+        """A small function of a task's value, computed where the value is."""
+        return fn(x.value) if client is None else client.submit(lambda t: fn(t.value), x, pure=False).result()
+
+    lp = run("log_power", log_power_total, path, keys.swaths)
+    amp = run("amplitude", amplitude_solve, lp, terms=terms)
+    pairs = {kind: run(f"{kind}_pairs", prepared_pairs, path, f"{kind}_pairs", keys.swaths if kind == "receiver"
+                       else keys.source, n_freq, bin_hz, est.smoothing_hz) for kind in ("receiver", "source")}
+    kinds = {}
+    for kind in ("receiver", "source"):
+        initial = warm.get(kind)
+        if initial is not None and client is not None:
+            initial = client.scatter(initial, hash=False)
+        phases = [run(f"{kind}_phase", phase_block, pairs[kind], sizes[kind], method, b, initial) for b in blocks]
+        kinds[kind] = run(f"{kind}_filters", kind_solution, kind, amp, pairs[kind], phases, sizes[kind], freqs,
+                          config, dt, n_fft)
+    results = {k: (v.value if client is None else v.result().value) for k, v in kinds.items()}
+    amp_v = fetch(amplitude_summary, amp)
+    noise = {k: fetch(noise_totals, v) for k, v in pairs.items()}
+    if runlog is not None:
+        futures = [f for _, f in parts]
+        seconds = [t.seconds for t in futures] if client is None else \
+            client.gather([client.submit(_seconds, f, pure=False) for f in futures])
+        for (name, _), sec in zip(parts, seconds):
+            runlog.write("solve", "batch", part=name, seconds=round(float(sec), 4))
+    nu = noise_to_signal(noise["receiver"][0] + noise["source"][0], noise["receiver"][1] + noise["source"][1])
+    arrays = {"freq_hz": freqs, "amplitude_residual_rms": amp_v["residual_rms"], "noise_to_signal": nu}
+    arrays |= results["source"][0]
+    arrays |= results["receiver"][0]
+    rph, sph = results["receiver"][1], results["source"][1]
     summary = {
-        "statistics": totals.keys,
+        "statistics": keys.all,
         "warm_start": bool(warm),
-        "receiver_components": int(rph.n_components), "source_components": int(sph.n_components),
+        "receiver_components": rph["components"], "source_components": sph["components"],
         "receiver_identity": int(arrays["receiver_identity"].sum()),
         "source_identity": int(arrays["source_identity"].sum()),
-        "amplitude_residual_rms": float(np.mean(amp.residual_rms)),
-        "amplitude_method": amp.method, "amplitude_iterations": int(amp.iterations),
-        "amplitude_converged": bool(np.all(amp.converged)),
-        "receiver_phase_residual": float(np.mean(rph.residual)),
-        "source_phase_residual": float(np.mean(sph.residual)),
+        "amplitude_residual_rms": float(np.mean(amp_v["residual_rms"])),
+        "amplitude_method": amp_v["method"], "amplitude_iterations": amp_v["iterations"],
+        "amplitude_converged": amp_v["converged"],
+        "receiver_phase_residual": rph["residual"],
+        "source_phase_residual": sph["residual"],
         "noise_to_signal_median": float(np.nanmedian(nu)) if np.any(np.isfinite(nu)) else None,
     }
     return arrays, summary
@@ -232,7 +340,7 @@ def estimate_survey(store_path, config: SurveyConfig, *, client, progress=None) 
                     "stats_skipped": stats.stats_skipped, "unchanged": True}
         if progress:
             progress("solve", 0, 1)
-        arrays, summary = solve_stations(store, config, stats.freqs_hz, n_fft, client=client)
+        arrays, summary = solve_stations(store, config, stats.freqs_hz, n_fft, client=client, runlog=runlog)
         if progress:
             progress("solve", 1, 1)
         warnings = []

@@ -149,6 +149,38 @@ def test_solution_outputs(scatter, tmp_path):
     assert result["summary"]["receiver_components"] == 1
 
 
+def test_solve_on_the_workers_equals_the_solve_in_process(scatter, client):
+    """The task graph of the solve (pair totals, amplitude solve, frequency
+    blocks of phases, per-kind filters) gives the in-process answer, and
+    logs the seconds of each of its tasks."""
+    from descatter.flows.estimate import spectra_params
+    from descatter.flows.solve import solve_stations
+
+    survey, store, result = scatter
+    cfg = load_config(survey / "survey.toml")
+    st = SurveyStore.open(store)
+    _, sol, _ = read_solution(st, result["solution"], names=("freq_hz",))
+    n_fft = spectra_params(cfg, dt_s=st.sample_interval_s)["n_fft"]
+
+    class Log:
+        rows: list = []
+
+        def write(self, stage, event, **fields):
+            self.rows.append((stage, event, fields))
+
+    log = Log()
+    here, summary_here = solve_stations(st, cfg, sol["freq_hz"], n_fft, client=None)
+    there, summary_there = solve_stations(st, cfg, sol["freq_hz"], n_fft, client=client, runlog=log)
+    assert here.keys() == there.keys()
+    for k in here:
+        # phase blocks of 8 frequencies against one call over all: the same LU per frequency
+        assert np.allclose(here[k], there[k], rtol=1e-7, atol=1e-7), k
+    assert summary_here["receiver_components"] == summary_there["receiver_components"]
+    parts = {f["part"] for stage, event, f in log.rows if stage == "solve" and event == "batch"}
+    assert {"log_power", "amplitude", "receiver_pairs", "source_pairs", "receiver_phase", "receiver_filters"} <= parts
+    assert all(f["seconds"] > 0 for _, _, f in log.rows)
+
+
 def test_rerun_skips_finished_work_and_statistics_add_up(scatter, client, tmp_path):
     survey, store, _ = scatter
     cfg = load_config(survey / "survey.toml")
