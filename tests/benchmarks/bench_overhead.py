@@ -7,14 +7,18 @@ subprocess on 127.0.0.1 with a temporary database; its start-up is timed
 apart), writes a synthetic survey and warms the page cache, then:
 
 1. ``run_flow`` (ingest -> estimate -> apply, one Prefect flow, its own
-   local Dask cluster of ``--workers`` processes): wall seconds, and the
+   local Dask cluster of ``--workers`` processes, started and stopped by
+   the flow): wall seconds, and the
    run log's chunk-function seconds (``batch`` records of ingest, spectra
    statistics and apply carry ``seconds``, I/O included; a statistics
    record's seconds are those of every task summed into it);
 2. ``run_flow`` again on the finished store: every chunk is skipped, so its
    wall time is close to the pure cost of the flow, the cluster and the
    checks;
-3. the same stages called directly on a local cluster started the same way,
+3. ``run_flow`` into a new store on a Dask cluster that is already
+   running (the service set-up: the flow connects to its scheduler), the
+   same worker count and settings;
+4. the same stages called directly on a local cluster started the same way,
    without Prefect.
 
 Overhead = wall - (sum of chunk seconds) / workers, as a fraction of wall.
@@ -137,6 +141,23 @@ def run(n_traces: int | None = None, size: str | None = "demo", workers: int = 2
                 run_flow(str(store), files, str(synth.config), workers=workers)
                 stop = time.time()
                 runs[label] = account(runlog_since(store, start), start=start, stop=stop, workers=workers)
+            # the service set-up: a Dask cluster already running (a scheduler the flow connects
+            # to, as with --cluster tcp://HOST:PORT), started the way the flow starts its own
+            from distributed import Client
+
+            from descatter.flows.cluster import build_cluster
+            from descatter.tasks.cluster_profile import LocalProfile
+
+            with build_cluster(LocalProfile(workers=workers)) as lc:
+                with Client(lc) as warm:
+                    warm.run(lambda: __import__("descatter.flows.ingest"))  # imports, as a running service has
+                running = tmp / "running.zarr"
+                start = time.time()
+                run_flow(str(running), files, str(synth.config), cluster=lc.scheduler_address)
+                stop = time.time()
+                runs["on a running cluster"] = account(runlog_since(running, start), start=start, stop=stop,
+                                                       workers=workers)
+            shutil.rmtree(running, ignore_errors=True)
         direct_store = tmp / "direct.zarr"
         direct = direct_stages(direct_store, files, synth.config, workers)
         load1 = os.getloadavg()[0]

@@ -129,6 +129,8 @@ def test_overhead_benchmark_prints_fractions_at_tiny_size():
     # a rerun skips every chunk: no chunk seconds, all of its wall is overhead
     assert rerun["summed"] == 0 and rerun["fraction"] == pytest.approx(1.0)
     assert rerun["wall"] < first["wall"]
+    running = r["runs"]["on a running cluster"]
+    assert 0 < running["fraction"] < 1 and running["summed"] > 0
 
 
 @pytest.mark.benchmark
