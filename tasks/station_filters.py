@@ -386,18 +386,6 @@ def identity_mask(pair_count: np.ndarray, *, min_pairs: int, response: np.ndarra
     return mask
 
 
-def with_identity(response: np.ndarray, mask: np.ndarray) -> np.ndarray:
-    """Copy of the responses (complex [n, n_freq]) with the rows of ``mask`` (bool [n]) and
-    any non-finite value set to 1, the identity filter. Returns complex128 [n, n_freq]."""
-    r = np.array(response, dtype=np.complex128)
-    m = np.asarray(mask, bool).reshape(-1)
-    if m.size != r.shape[0]:
-        raise ConfigError(f"mask: got {m.size} values for {r.shape[0]} stations")
-    r[m] = 1.0
-    r[~np.isfinite(r)] = 1.0
-    return r
-
-
 def smooth_gauge(response: np.ndarray, *, freqs_hz: np.ndarray, component: np.ndarray | None = None) -> np.ndarray:
     """Re-gauge station responses so the common phase they share varies smoothly with frequency.
 

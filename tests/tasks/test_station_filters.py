@@ -24,7 +24,6 @@ from descatter.tasks.station_filters import (
     station_coherence,
     station_response,
     time_filters,
-    with_identity,
 )
 from descatter.tasks.synthetic import station_truth, synthetic_spec
 from descatter.tasks.wavelets import band_taper
@@ -254,10 +253,7 @@ def test_pair_counts_and_station_coherence_match_loops():
 def test_stations_with_too_few_pairs_get_the_identity_filter():
     response = np.array([[2.0 + 1j, 1.0], [np.nan, 1.0], [0.5, 0.5j], [3.0, 3.0]], dtype=np.complex128)
     mask = identity_mask(np.array([10, 10, 2, 10]), min_pairs=5, response=response)
-    assert mask.tolist() == [False, True, True, False]
-    fixed = with_identity(response, mask)
-    assert np.all(np.isfinite(fixed)) and np.all(fixed[1:3] == 1.0)
-    np.testing.assert_array_equal(fixed[[0, 3]], response[[0, 3]])
+    assert mask.tolist() == [False, True, True, False]  # too few pairs, or a non-finite response
 
 
 def test_smooth_gauge_removes_a_rough_common_phase_and_keeps_relative_filters():
