@@ -42,10 +42,11 @@ def _unique_sorted_runs(key: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return ordered[first], inverse
 
 
-def _merge_rows(rows_a: np.ndarray, rows_b: np.ndarray):
-    """Union of two int tables [n, 2] (rows sorted, lexicographic order) and the
-    row of each input row in it, so the result does not depend on input order."""
-    both = np.concatenate([rows_a, rows_b], axis=0).astype(np.int64, copy=False)
+def _union_rows(tables: list[np.ndarray]) -> tuple[np.ndarray, list[np.ndarray]]:
+    """Union of int tables [n_i, 2] (each sorted lexicographically) and, per
+    table, the row of each of its rows in the union; the result does not
+    depend on the tables' order."""
+    both = np.concatenate([np.asarray(t).reshape(-1, 2) for t in tables]).astype(np.int64, copy=False)
     key = _row_keys(both)
     if key is None:
         union, inverse = np.unique(both, axis=0, return_inverse=True)
@@ -53,7 +54,13 @@ def _merge_rows(rows_a: np.ndarray, rows_b: np.ndarray):
     else:
         ukey, inverse = _unique_sorted_runs(key)
         union = np.column_stack([ukey >> 32, ukey & (2**32 - 1)])
-    return union, inverse[: len(rows_a)], inverse[len(rows_a):]
+    return union, np.split(inverse, np.cumsum([len(t) for t in tables])[:-1])
+
+
+def _merge_rows(rows_a: np.ndarray, rows_b: np.ndarray):
+    """Union of two sorted int tables [n, 2] and the row of each input row in it."""
+    union, (ia, ib) = _union_rows([rows_a, rows_b])
+    return union, ia, ib
 
 
 @dataclass
@@ -117,20 +124,10 @@ class PairSums:
         """
         if not tables:
             return cls.empty(n_freq)
-        both = np.concatenate([np.asarray(t).reshape(-1, 2) for t in tables]).astype(np.int64, copy=False)
-        key = _row_keys(both)
-        if key is None:
-            union, inverse = np.unique(both, axis=0, return_inverse=True)
-            inverse = inverse.reshape(-1)
-        else:
-            ukey, inverse = _unique_sorted_runs(key)
-            union = np.column_stack([ukey >> 32, ukey & (2**32 - 1)])
+        union, inverses = _union_rows(tables)
         out = cls(union, np.zeros((len(union), n_freq), np.complex128), np.zeros((len(union), n_freq)),
                   np.zeros((len(union), n_freq)), np.zeros(len(union), np.int64))
-        start = 0
-        for i, table in enumerate(tables):
-            idx = inverse[start: start + len(table)]
-            start += len(table)
+        for i, (table, idx) in enumerate(zip(tables, inverses)):
             part = load(i)
             if not np.array_equal(part.pairs, table):
                 raise ConfigError(f"PairSums.total: part {i} holds other pairs than its table")
