@@ -1,11 +1,17 @@
 """Ingest: SEG-Y swaths into the survey store, in parallel on Dask.
 
-Each Dask task reads one block of whole traces and writes exactly the
-matching chunk of every per-trace array, then its done-flag; the driver
-commits a swath in the manifest once all its chunks are done. Every file is
-checked in full (layout, sampling, every trace header's sample count and
-interval) before anything is written, so a bad file leaves the store as it
-was; a killed ingest leaves a staging group that the next run resumes.
+Each chunk task reads one block of whole traces and writes exactly the
+matching chunk of every per-trace array, then its done-flag. Once a swath's
+chunks are done, a geometry task (also on a worker, chained on them)
+decodes its header fields, builds its geometry and QC and writes them, all
+inside the swath's own staging group. The driver then does only the serial
+part, in the order the files were given: it appends the swath's new
+stations to the shared station tables, re-points the swath's station
+indices if an earlier swath of the same ingest added stations, and commits
+the swath in the manifest. Every file is checked in full (layout, sampling,
+every trace header's sample count and interval) before anything is
+written, so a bad file leaves the store as it was; a killed ingest leaves a
+staging group that the next run resumes.
 """
 
 from __future__ import annotations
@@ -14,9 +20,12 @@ import hashlib
 import json
 import logging
 import time
+import uuid
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable
+
+import numpy as np
 
 from descatter.storage.atomic import sweep_partials, write_json_atomic, read_json
 from descatter.storage.checkpoints import CHECKPOINTS, Checkpoints, clear_swath
@@ -26,10 +35,14 @@ from descatter.storage.runlog import RunLog
 from descatter.storage.segy import (
     SegyInfo, decode_fields, quick_fingerprint, read_block, scale_coordinates, scan_segy,
 )
-from descatter.storage.store import SurveyStore, SwathRecord, chunk_bounds, write_header_fields, write_trace_chunk
+from descatter.flows.sps_geometry import SAMPLE_BITS
+from descatter.storage.store import SurveyStore, SwathRecord, chunk_bounds, create_header_fields, write_trace_chunk
+from descatter.tasks.geometry import assign_stations
 from descatter.tasks.swath_geometry import swath_geometry
 from descatter.storage.sps import read_sps, sps_trace_geometry
-from descatter.storage.stations import read_stations, write_qc_flags, write_stations, write_swath_geometry
+from descatter.storage.stations import (
+    KINDS, StationAppender, read_stations, renumber_stations, write_qc_flags, write_swath_geometry,
+)
 from descatter.tasks.config import SurveyConfig
 from descatter.tasks.trace_qc import sample_flags
 from descatter.tasks.errors import DescatterError, InputNotFoundError, SwathConflictError
@@ -88,6 +101,36 @@ def ingest_chunk(
     }
     ckpt.mark_done(chunk, summary)
     return {**summary, "chunk": chunk, "resumed": False}
+
+
+def ingest_geometry(
+    store_path: str, info: SegyInfo, swath: str, config: SurveyConfig, known: dict[str, int],
+    sps_files: list[str] | None, chunks: list[dict],
+) -> dict:
+    """One swath, once every chunk is written (``chunks``: their summaries,
+    passed only to order this task after them): decode the header fields,
+    build the geometry and QC, write them, all in the swath's staging group.
+
+    Stations are looked up in the first ``known`` rows of each table (its
+    committed length when the ingest began); the driver gives stations that
+    an earlier swath of the same ingest appended meanwhile their final rows
+    (:func:`_commit`). Returns the new station rows found against those
+    rows, the warnings and the seconds taken. Redone whole on a resumed
+    ingest: it only rewrites arrays of an uncommitted swath.
+    """
+    t0 = time.perf_counter()
+    store = SurveyStore.open(store_path)
+    headers = decode_headers(store, swath, info, config.ingest.headers.layout())
+    sps = None
+    if sps_files:
+        sps = read_sps(*sps_files, revision=config.geometry.sps_revision,
+                       columns=config.geometry.sps_columns or None)
+    geom = build_geometry(store, swath, config, sps, headers=headers, known=known)
+    write_swath_geometry(store, swath, geom.arrays, chunk_traces=config.ingest.chunk_traces)
+    write_qc_flags(store, swath, geom.flags)
+    return {"swath": swath, "new_sources": geom.new_sources,
+            "new_receivers": geom.new_receivers, "warnings": geom.warnings,
+            "seconds": time.perf_counter() - t0}
 
 
 @dataclass
@@ -174,10 +217,11 @@ def _prepare_staging(store: SurveyStore, plan: _Plan, config: SurveyConfig) -> b
             return True
     store.drop_swath_group(plan.name)
     clear_swath(store.path, plan.name)
+    # Only the arrays the chunk tasks write; the geometry task creates the
+    # header fields with their values (create_header_fields).
     store.create_swath_arrays(
         plan.name, n_traces=plan.info.n_traces, n_samples=plan.info.n_samples,
-        chunk_traces=config.ingest.chunk_traces,
-        header_dtypes=header_dtypes(config.ingest.headers.layout()),
+        chunk_traces=config.ingest.chunk_traces, header_dtypes={},
         compression_level=config.ingest.compression_level,
     )
     write_json_atomic(marker, {"fingerprint": plan.fingerprint, "file": plan.info.path})
@@ -225,44 +269,82 @@ def ingest_swaths(
             return report
         runlog.write(STAGE, "start", swaths=[p.name for p in plans],
                      traces=sum(p.info.n_traces for p in plans))
+        futures: dict = {}
         try:
-            futures = {}
+            geometry_futures = set()
+            # Geometry tasks look stations up in the tables as committed now;
+            # _commit re-points what earlier swaths of this ingest add.
+            counts = store.station_counts()
+            writer = StationAppender(store)
+            tables = {kind: _Appended(counts[kind], writer) for kind in KINDS}
+            sps_files = store.attrs.get("sps_files") or None  # recorded by 'descatter geometry --sps'
+            # Keys unique to this call: the scheduler hands back a task it still
+            # holds under a submitted key instead of running it again (a chunk
+            # of an earlier call on another store, or a geometry built with
+            # other QC settings, which the fingerprint does not cover).
+            token = uuid.uuid4().hex[:8]
             for plan in plans:
                 resumed = _prepare_staging(store, plan, config)
                 if resumed:
                     log.info("resuming staged swath %s", plan.name)
+                chunk_futures = []
                 for chunk, (a, b) in enumerate(plan.bounds):
                     fut = client.submit(
                         ingest_chunk, str(store_path), plan.info, plan.name, chunk, a, b,
-                        plan.fingerprint, config.qc.clip_run, key=f"ingest-{plan.name}-{chunk}-{plan.fingerprint[:8]}",
+                        plan.fingerprint, config.qc.clip_run, key=f"ingest-{plan.name}-{chunk}-{token}",
                         pure=False,
                     )
                     futures[fut] = plan
+                    chunk_futures.append(fut)
+                fut = client.submit(
+                    ingest_geometry, str(store_path), plan.info, plan.name, config, counts, sps_files,
+                    chunk_futures, key=f"ingest-geometry-{plan.name}-{token}", pure=False,
+                )
+                futures[fut] = plan
+                geometry_futures.add(fut)
             digests: dict[str, dict[int, str]] = {p.name: {} for p in plans}
+            built: dict[str, dict] = {}
+            failed: dict[str, object] = {}
             done_traces = {p.name: 0 for p in plans}
             next_commit = 0
             for fut in as_completed(list(futures)):
                 plan = futures[fut]
-                summary = fut.result()
-                digests[plan.name][summary["chunk"]] = summary["digest"]
-                done_traces[plan.name] += summary["traces"]
-                if summary["resumed"]:
-                    report.resumed_chunks += 1
+                if fut in geometry_futures:
+                    if fut.status == "error":
+                        # raised in its turn to commit, so the swaths before it
+                        # still commit whatever the workers' timing
+                        failed[plan.name] = fut
+                    else:
+                        built[plan.name] = fut.result()
+                        # a task record, not a batch: it is no chunk and has no done-flag
+                        runlog.write(STAGE, "task", swath=plan.name, task="geometry",
+                                     seconds=round(built[plan.name]["seconds"], 4))
                 else:
-                    report.written_chunks += 1
-                    report.bytes_read += summary["bytes"]
-                runlog.write(STAGE, "batch", swath=plan.name, chunk=summary["chunk"],
-                             traces=summary["traces"], seconds=round(summary["seconds"], 4),
-                             resumed=summary["resumed"])
-                if progress:
-                    progress(plan.name, done_traces[plan.name], plan.info.n_traces)
-                if not summary["resumed"]:
-                    fault_point(STAGE)
+                    summary = fut.result()
+                    digests[plan.name][summary["chunk"]] = summary["digest"]
+                    done_traces[plan.name] += summary["traces"]
+                    if summary["resumed"]:
+                        report.resumed_chunks += 1
+                    else:
+                        report.written_chunks += 1
+                        report.bytes_read += summary["bytes"]
+                    runlog.write(STAGE, "batch", swath=plan.name, chunk=summary["chunk"],
+                                 traces=summary["traces"], seconds=round(summary["seconds"], 4),
+                                 resumed=summary["resumed"])
+                    if progress:
+                        progress(plan.name, done_traces[plan.name], plan.info.n_traces)
+                    if not summary["resumed"]:
+                        fault_point(STAGE)
                 # Commit finished swaths in the order the files were given,
                 # so the manifest order does not depend on worker timing.
-                while next_commit < len(plans) and len(digests[plans[next_commit].name]) == len(plans[next_commit].bounds):
+                while next_commit < len(plans):
                     ready = plans[next_commit]
-                    report.warnings += _commit(store, ready, digests[ready.name], config)
+                    if ready.name in failed:
+                        failed[ready.name].result()  # raises the task's error
+                    if ready.name not in built or len(digests[ready.name]) < len(ready.bounds):
+                        break
+                    report.warnings += _commit(store, ready, digests[ready.name], built.pop(ready.name),
+                                               tables, config, first=next_commit == 0)
                     report.added.append(ready.name)
                     report.traces += ready.info.n_traces
                     next_commit += 1
@@ -290,51 +372,93 @@ def load_sps_geometry(store: SurveyStore, config: SurveyConfig):
 def decode_headers(store: SurveyStore, name: str, info: SegyInfo, layout: dict[str, tuple[int, int]]) -> dict:
     """Decode a staged swath's raw trace headers into ``headers/<field>``.
 
-    Done once per swath by the writer, whole-array: the 240 header bytes are
-    small beside the samples, and one write per field costs far less than
-    one per field and chunk (zarr's per-write overhead dominated the ingest
-    chunks when they wrote 16 header arrays each).
+    Done once per swath, whole-array, by its geometry task: the 240 header
+    bytes are small beside the samples, and one write per field costs far
+    less than one per field and chunk (zarr's per-write overhead dominated
+    the ingest chunks when they wrote 16 header arrays each).
     """
-    raw = store.array(name, "trace_headers")[:]
+    raw_array = store.array(name, "trace_headers")
+    raw = raw_array[:]
     ints = decode_fields(raw, layout, info.byte_order)
     scaled = scale_coordinates(ints, info.measurement_system)
     fields = {f: (scaled[f] if f in SCALED_FIELDS else ints[f]) for f in layout}
-    write_header_fields(store, name, fields)
+    create_header_fields(store, name, fields, header_dtypes(layout), chunk_traces=raw_array.chunks[0])
     return fields
 
 
-def build_geometry(store: SurveyStore, name: str, config: SurveyConfig, sps=None, headers=None):
-    """Geometry and QC of a staged or committed swath from its stored headers."""
+def build_geometry(store: SurveyStore, name: str, config: SurveyConfig, sps=None, headers=None,
+                   known: dict[str, int] | None = None):
+    """Geometry and QC of a staged or committed swath from its stored headers.
+
+    Stations are looked up in the first ``known[kind]`` rows of each table
+    (default: its committed length). The stored QC flags are read for their
+    sample bits only, so a geometry built twice (a resumed ingest) starts
+    from the chunk tasks' flags, not from the flags written the first time.
+    """
     headers = headers if headers is not None else store.headers(name)
     trace_sps = sps_trace_geometry(sps, headers["field_record"], headers["channel"]) if sps else None
-    flags = store.array(name, "qc_flags")[:]
-    known = {kind: read_stations(store, kind)["key"] for kind in ("sources", "receivers")}
-    return swath_geometry(name, headers, flags, config, known_sources=known["sources"],
-                          known_receivers=known["receivers"], sps=trace_sps)
+    flags = store.array(name, "qc_flags")[:] & np.uint16(SAMPLE_BITS)
+    known = known or {}
+    keys = {kind: read_stations(store, kind, n=known.get(kind), fields=("key",))["key"] for kind in KINDS}
+    return swath_geometry(name, headers, flags, config, known_sources=keys["sources"],
+                          known_receivers=keys["receivers"], sps=trace_sps)
 
 
-def _commit(store: SurveyStore, plan: _Plan, digests: dict[int, str], config: SurveyConfig) -> list[str]:
-    """Geometry, station rows and QC of a fully written swath, then the
-    manifest entry that publishes it. Returns warnings."""
-    headers = decode_headers(store, plan.name, plan.info, config.ingest.headers.layout())
-    geom = build_geometry(store, plan.name, config, load_sps_geometry(store, config), headers=headers)
-    counts = store.station_counts()
-    stations = {
-        "sources": write_stations(store, "sources", geom.new_sources, start=counts["sources"]),
-        "receivers": write_stations(store, "receivers", geom.new_receivers, start=counts["receivers"]),
-    }
-    write_swath_geometry(store, plan.name, geom.arrays, chunk_traces=config.ingest.chunk_traces)
-    write_qc_flags(store, plan.name, geom.flags)
+class _Appended:
+    """One station table as this ingest grows it: its committed length when
+    the ingest began (what the geometry tasks looked stations up in) and the
+    keys appended since, in row order."""
+
+    def __init__(self, start: int, writer: StationAppender):
+        self.start = start
+        self.keys = np.zeros(0, np.int64)
+        self.writer = writer
+
+    @property
+    def count(self) -> int:
+        return self.start + len(self.keys)
+
+
+_INDEX_FIELDS = {"sources": "source_index", "receivers": "receiver_index"}
+
+
+def _commit(store: SurveyStore, plan: _Plan, digests: dict[int, str], built: dict,
+            tables: dict[str, _Appended], config: SurveyConfig, *, first: bool) -> list[str]:
+    """Publish a swath whose chunks and geometry task are done: append its
+    new stations, then the manifest entry (the commit point). Returns warnings.
+
+    ``built`` is the geometry task's result. It numbered the stations it did
+    not find in the first ``tables[kind].start`` rows from there on, in order
+    of first appearance; :func:`descatter.tasks.geometry.assign_stations`
+    against the keys appended since maps them to the rows they get now, the
+    same rows (and new-station order) as a lookup in the whole table: a
+    station an earlier swath of this ingest appended keeps that row, the
+    others follow the table's end in the same order. Their rows' means come
+    from this swath's traces alone, so dropping the ones already appended
+    leaves the rest bit for bit.
+    """
+    stations, appended = {}, {}
+    for kind, table in tables.items():
+        rows = built[f"new_{kind}"]
+        found, _ = assign_stations(rows["key"], table.keys)
+        index = table.start + found
+        if not np.array_equal(index, np.arange(table.start, table.start + len(index))):
+            renumber_stations(store, plan.name, _INDEX_FIELDS[kind], first=table.start, index=index)
+        new = index >= table.count
+        appended[kind] = rows["key"][new]
+        stations[kind] = table.writer.append(kind, {f: v[new] for f, v in rows.items()}, start=table.count)
     h = hashlib.blake2b(digest_size=16)
     h.update(plan.info.textual + plan.info.extended_textual + plan.info.binary)
     for chunk in range(len(plan.bounds)):
         h.update(bytes.fromhex(digests[chunk]))
     info = plan.info
-    if not store.swath_names():
-        store.set_attrs(n_samples=info.n_samples, sample_interval_s=info.dt_s,
-                        ingest_config=config.ingest.model_dump(mode="json"))
-    # later stages reuse the config given at ingest unless told otherwise
-    store.set_attrs(config=config.model_dump(mode="json"))
+    if first:
+        if not store.swath_names():
+            store.set_attrs(n_samples=info.n_samples, sample_interval_s=info.dt_s,
+                            ingest_config=config.ingest.model_dump(mode="json"))
+        # later stages reuse the config given at ingest unless told otherwise
+        # (one config per ingest: set with its first commit)
+        store.set_attrs(config=config.model_dump(mode="json"))
     store.commit_swath(SwathRecord(
         name=plan.name, file=str(Path(info.path).resolve()), size=info.size,
         fingerprint=h.hexdigest(), quick_fingerprint=plan.quick, n_traces=info.n_traces,
@@ -344,6 +468,8 @@ def _commit(store: SurveyStore, plan: _Plan, digests: dict[int, str], config: Su
         extended_textual=info.extended_textual, binary=info.binary,
         committed_at=time.strftime("%Y-%m-%dT%H:%M:%S%z"),
     ), stations=stations)
-    for w in geom.warnings:
+    for kind, table in tables.items():
+        table.keys = np.concatenate([table.keys, appended[kind]])
+    for w in built["warnings"]:
         log.warning(w)
-    return geom.warnings
+    return built["warnings"]
