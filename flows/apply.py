@@ -14,6 +14,7 @@ import hashlib
 import json
 import logging
 import time
+import uuid
 from pathlib import Path
 
 import numpy as np
@@ -258,6 +259,7 @@ def apply_solution(store_path: str | Path, config: SurveyConfig, *, client, solu
         for w in settings["warnings"]:
             runlog.write(STAGE, "warning", message=w)
         grids_f = None  # built and scattered once, when a chunk needs them
+        token = uuid.uuid4().hex[:8]  # task keys of this call only (see run_spectra)
         for rec in records:
             fp = hashlib.blake2b(json.dumps({"v": STAGE_VERSION, "swath": rec.fingerprint, **fixed},
                                             sort_keys=True).encode(), digest_size=16).hexdigest()
@@ -283,7 +285,7 @@ def apply_solution(store_path: str | Path, config: SurveyConfig, *, client, solu
             for chunk, (a, b) in enumerate(rec.chunk_bounds()):
                 futures.append(client.submit(apply_chunk, str(store.path), rec.name, chunk, a, b, sid, index,
                                              settings, fp, changed_f, grids_f,
-                                             key=f"apply-{rec.name}-{chunk}-{fp[:8]}-{sid}", pure=False))
+                                             key=f"apply-{rec.name}-{chunk}-{token}", pure=False))
         runlog.write(STAGE, "start", solution=sid, chunks=len(futures), mode=settings["mode"],
                      prewhitening=settings["prewhitening"], reapply_tolerance=tolerance)
         total = sum(r.n_traces for r in records)

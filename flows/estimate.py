@@ -15,6 +15,7 @@ import hashlib
 import json
 import logging
 import time
+import uuid
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable
@@ -250,6 +251,7 @@ def run_spectra(store: SurveyStore, records: list[SwathRecord], params: dict, n_
 
     fps, futures = {}, []
     total = sum(r.n_traces for r in records)
+    token = uuid.uuid4().hex[:8]
     for rec in records:
         fp = _fingerprint({"v": STAGE_VERSION, "swath": rec.fingerprint, "params": params})
         fps[rec.name] = fp
@@ -259,8 +261,10 @@ def run_spectra(store: SurveyStore, records: list[SwathRecord], params: dict, n_
             Checkpoints(store.path, "spectra", rec.name, fp).clear()
             write_json_atomic(_stage_marker(store, "spectra", rec.name), {"fingerprint": fp})
         for chunk, (a, b) in enumerate(rec.chunk_bounds()):
+            # a key of this call's own: one equal to an earlier call's still-held future would be
+            # answered with that result, not run (another store with the same swath, a retry)
             futures.append(client.submit(spectra_chunk, str(store.path), rec.name, chunk, a, b, params, fp,
-                                         key=f"spectra-{rec.name}-{chunk}-{fp[:8]}", pure=False))
+                                         key=f"spectra-{rec.name}-{chunk}-{token}", pure=False))
     runlog.write("spectra", "start", swaths=[r.name for r in records], chunks=len(futures))
     done = 0
     for fut in as_completed(futures):

@@ -1,7 +1,10 @@
 """The run log: JSON lines beside the arrays, appended by the lock holder.
 
 One record per event: ``{"time", "run", "stage", "event", ...}`` with event
-``start``, ``end``, ``batch``, ``skip``, ``warning`` or ``error``.
+``start``, ``end``, ``batch`` (a chunk or job done, with its ``seconds``;
+the solve's: one per task of its graph), ``task`` (other worker work of a
+stage with its ``seconds``, such as ingest's per-swath geometry), ``skip``,
+``warning`` or ``error``.
 """
 
 from __future__ import annotations

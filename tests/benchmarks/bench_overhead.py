@@ -61,7 +61,7 @@ def account(records: list[dict], *, start: float, stop: float, workers: int) -> 
     chunk = defaultdict(float)
     marks = {}
     for r in records:
-        if r["event"] == "batch" and "seconds" in r and not r.get("resumed", False):
+        if r["event"] in ("batch", "task") and "seconds" in r and not r.get("resumed", False):
             chunk[r["stage"]] += float(r["seconds"])
         if r["event"] == "start":
             marks.setdefault(f"{r['stage']}:start", r["t"])
