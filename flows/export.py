@@ -10,6 +10,9 @@ otherwise; a little-endian input is converted field by field.
 from __future__ import annotations
 
 import logging
+import os
+import threading
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable, Literal
@@ -36,8 +39,7 @@ def _headers_for(rec: SwathRecord, byte_order: str):
 
 
 def _write_swaths(store: SurveyStore, records: list[SwathRecord], out: Path, *, array: str,
-                  sample_format: str, byte_order: str, progress: Progress | None,
-                  done: int, total: int) -> int:
+                  sample_format: str, byte_order: str, progress: Callable[[int], None] | None) -> None:
     first = records[0]
     binary, _ = _headers_for(first, byte_order)
     with SegyWriter(
@@ -49,10 +51,8 @@ def _write_swaths(store: SurveyStore, records: list[SwathRecord], out: Path, *, 
             headers = store.array(rec.name, "trace_headers")
             for start, stop, samples in store.iter_blocks(rec.name, array):
                 writer.write(convert(headers[start:stop]), samples)
-                done += stop - start
                 if progress:
-                    progress(done, total)
-    return done
+                    progress(stop - start)
 
 
 def export_segy(
@@ -64,8 +64,15 @@ def export_segy(
     byte_order: Literal["big", "little"] = "big",
     per_swath: bool = False,
     progress: Progress | None = None,
+    threads: int | None = None,
 ) -> ExportReport:
-    """Write SEG-Y from the store (reads only; takes no lock)."""
+    """Write SEG-Y from the store (reads only; takes no lock).
+
+    Per swath, ``threads`` files are written at once (default: one per core,
+    at most 4): reading, encoding, writing and the closing fsync release the
+    GIL (on 2 cores, 10 swaths of 20,096 traces, six runs each: two writers
+    0.47-0.52 s, one 0.55-0.93 s). No cluster: export stays a plain read of
+    the store."""
     store = SurveyStore.open(store_path)
     records = store.manifest()
     if not records:
@@ -80,18 +87,26 @@ def export_segy(
         )
     total = sum(r.n_traces for r in records)
     out = Path(out)
-    files: list[Path] = []
+    lock = threading.Lock()
+    done = 0
+
+    def advance(n: int) -> None:
+        nonlocal done
+        with lock:
+            done += n
+            if progress:
+                progress(done, total)
+
+    options = dict(array=array, sample_format=sample_format, byte_order=byte_order, progress=advance)
     if per_swath:
         out.mkdir(parents=True, exist_ok=True)
-        done = 0
-        for rec in records:
-            path = out / f"{rec.name}.sgy"
-            done = _write_swaths(store, [rec], path, array=array, sample_format=sample_format,
-                                 byte_order=byte_order, progress=progress, done=done, total=total)
-            files.append(path)
+        files = [out / f"{rec.name}.sgy" for rec in records]
+        n_threads = threads or min(4, os.cpu_count() or 1)
+        with ThreadPoolExecutor(max_workers=max(1, n_threads)) as pool:
+            for f in [pool.submit(_write_swaths, store, [rec], path, **options) for rec, path in zip(records, files)]:
+                f.result()  # the first error in swath order; the pool lets the other writers finish
     else:
-        _write_swaths(store, records, out, array=array, sample_format=sample_format,
-                      byte_order=byte_order, progress=progress, done=0, total=total)
-        files.append(out)
+        _write_swaths(store, records, out, **options)
+        files = [out]
     log.info("exported %d traces to %s", total, ", ".join(map(str, files)))
     return ExportReport(files=files, traces=total)

@@ -197,10 +197,14 @@ def test_export_round_trips(ingested, tiny_survey, tmp_path):
     out = tmp_path / "all.sgy"
     export_segy(store_path, out)
     assert compare_with_store(out, store_path) == []
-    # per swath: byte-identical to the (IEEE, big-endian) input
-    export_segy(store_path, tmp_path / "per", per_swath=True)
-    for line in _lines(tiny_survey):
-        assert (tmp_path / "per" / line.name).read_bytes() == line.read_bytes()
+    # per swath: byte-identical to the (IEEE, big-endian) input, one writer or several at once
+    for threads in (1, 3):
+        seen = []
+        export_segy(store_path, tmp_path / f"per{threads}", per_swath=True, threads=threads,
+                    progress=lambda done, total: seen.append((done, total)))
+        for line in _lines(tiny_survey):
+            assert (tmp_path / f"per{threads}" / line.name).read_bytes() == line.read_bytes()
+        assert seen[-1][0] == seen[-1][1] and [d for d, _ in seen] == sorted(d for d, _ in seen)
     # IBM export read by segyio: equal within IBM precision (6 hex digits: 2**-21 relative)
     export_segy(store_path, tmp_path / "ibm.sgy", sample_format="ibm")
     store = SurveyStore.open(store_path)
