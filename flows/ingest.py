@@ -133,6 +133,34 @@ def ingest_geometry(
             "seconds": time.perf_counter() - t0}
 
 
+# worker task states of a task still running (cancelled ones run to their end)
+_RUNNING_STATES = ("executing", "long-running", "cancelled", "resumed")
+
+
+def _running_keys(keys: set, dask_worker=None) -> list:
+    return [k for k, ts in dask_worker.state.tasks.items() if k in keys and ts.state in _RUNNING_STATES]
+
+
+def wait_for_running(client, keys: set, *, timeout_s: float = 120.0, poll_s: float = 0.05) -> bool:
+    """Block until no worker runs any of ``keys`` any more (at most ``timeout_s``).
+
+    Cancelling a future does not stop a task a worker is executing; it runs
+    to its end and its result is dropped. Returns False on a timeout (logged)."""
+    deadline = time.monotonic() + timeout_s
+    while True:
+        try:
+            running = [k for ks in client.run(_running_keys, keys).values() for k in ks]
+        except Exception as exc:  # a worker lost meanwhile runs nothing of ours any more
+            log.warning("could not ask the workers which tasks still run: %s", exc)
+            return False
+        if not running:
+            return True
+        if time.monotonic() > deadline:
+            log.warning("%d cancelled ingest task(s) still running after %g s", len(running), timeout_s)
+            return False
+        time.sleep(poll_s)
+
+
 @dataclass
 class _Plan:
     name: str
@@ -352,6 +380,9 @@ def ingest_swaths(
             for fut in futures:
                 fut.cancel()
             if isinstance(exc, DescatterError):
+                # a cancelled task already running goes on to its end: let it finish writing
+                # before its staging group is deleted, or it would leave part of one behind
+                wait_for_running(client, {f.key for f in futures})
                 _discard_staging(store, plans)
                 runlog.write(STAGE, "error", error=str(exc))
             raise

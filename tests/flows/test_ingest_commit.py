@@ -294,3 +294,31 @@ def test_whole_arrays_equal_zarr_create_array(tmp_path):
         return {str(p.relative_to(root)): p.read_bytes() for p in sorted(root.rglob("*")) if p.is_file()}
 
     assert files(tmp_path / "ours.zarr") == files(tmp_path / "theirs.zarr")
+
+
+def _slow_write(path: str, seconds: float) -> str:
+    import time as _time
+
+    _time.sleep(seconds)
+    with open(path, "w") as f:
+        f.write("done")
+    return path
+
+
+def test_refusal_waits_for_cancelled_tasks_that_still_run(client, tmp_path):
+    """A cancelled task that a worker is executing runs to its end: the ingest
+    waits for it before deleting the staging it writes into."""
+    import time as _time
+
+    from descatter.flows.ingest import wait_for_running
+
+    marker = tmp_path / "written"
+    fut = client.submit(_slow_write, str(marker), 1.0, pure=False)
+    deadline = _time.monotonic() + 30
+    while not any(fut.key in ks for ks in client.processing().values()) and _time.monotonic() < deadline:
+        _time.sleep(0.02)
+    fut.cancel()
+    assert not marker.exists()  # still running
+    assert wait_for_running(client, {fut.key})
+    assert marker.read_text() == "done"  # the wait lasted until the task had written
+    assert wait_for_running(client, {"no-such-key"})  # nothing of ours running: returns at once
