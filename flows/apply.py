@@ -57,11 +57,11 @@ def _station_grid(solution: dict, kind: str, rows: np.ndarray, *, lead_s: float,
 GRID_BLOCK = 4096  # stations per block when building the grids (bounds the complex128 temporaries)
 
 
-def station_grids(sol: dict, attrs: dict, settings: dict) -> dict[str, np.ndarray]:
+def station_grids(sol: dict, settings: dict) -> dict[str, np.ndarray]:
     """Every station's response on the correction grid, complex64 [n, n_fft // 2 + 1]
     per kind, and the identity flags: built once per solution and shared by
     every chunk task (building them per chunk cost about 27 of 111 ms)."""
-    common = dict(lead_s=settings["lead_s"], dt_s=attrs["dt_s"], n_fft=settings["n_fft"],
+    common = dict(lead_s=settings["lead_s"], dt_s=settings["dt_s"], n_fft=settings["n_fft"],
                   band_index=np.asarray(settings["band_index"], np.int64), taper_bins=settings["taper_bins"])
     out = {}
     for kind in ("source", "receiver"):
@@ -281,7 +281,7 @@ def apply_solution(store_path: str | Path, config: SurveyConfig, *, client, solu
                         hash=False)
                 changed_f[u] = masks[old_sid]
             if grids_f is None:
-                grids_f = client.scatter(station_grids(sol, attrs, settings), hash=False, broadcast=True)
+                grids_f = client.scatter(station_grids(sol, settings), hash=False, broadcast=True)
             for chunk, (a, b) in enumerate(rec.chunk_bounds()):
                 futures.append(client.submit(apply_chunk, str(store.path), rec.name, chunk, a, b, sid, index,
                                              settings, fp, changed_f, grids_f,

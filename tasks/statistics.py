@@ -95,19 +95,7 @@ class PairSums:
         return self.cross.shape[1]
 
     def __add__(self, other: "PairSums") -> "PairSums":
-        union, ia, ib = _merge_rows(self.pairs, other.pairs)
-        out = PairSums.empty(self.n_freq)
-        out.pairs = union
-        out.cross = np.zeros((len(union), self.n_freq), np.complex128)
-        out.power_a = np.zeros((len(union), self.n_freq))
-        out.power_b = np.zeros((len(union), self.n_freq))
-        out.count = np.zeros(len(union), np.int64)
-        for idx, part in ((ia, self), (ib, other)):
-            out.cross[idx] += part.cross
-            out.power_a[idx] += part.power_a
-            out.power_b[idx] += part.power_b
-            out.count[idx] += part.count
-        return out
+        return PairSums.total([self.pairs, other.pairs], (self, other).__getitem__, self.n_freq)
 
     @classmethod
     def total(cls, tables: list[np.ndarray], load, n_freq: int) -> "PairSums":

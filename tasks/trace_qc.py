@@ -202,11 +202,7 @@ def sample_flags(samples: np.ndarray, *, clip_run: int, rows: int = 128) -> np.n
         on_grid = (np.abs(block[:, ::step]) == peak[:, None]).sum(axis=-1)
         cand = np.flatnonzero((on_grid >= 2) & ~bad & ~dead)
         if cand.size:
-            at_peak = np.abs(block[cand]) == peak[cand, None]
-            c = np.zeros((cand.size, ns + 1), dtype=np.int32)
-            np.cumsum(at_peak, axis=-1, out=c[:, 1:])
-            clipped = (c[:, clip_run:] - c[:, :-clip_run]).max(axis=-1) >= clip_run
-            mask[cand[clipped]] |= FLAG_BITS["clipped"]
+            mask[cand[clipped_traces(block[cand], clip_run=clip_run)]] |= FLAG_BITS["clipped"]
     return out
 
 

@@ -163,7 +163,8 @@ def test_solve_on_the_workers_equals_the_solve_in_process(scatter, client):
     n_fft = spectra_params(cfg, dt_s=st.sample_interval_s)["n_fft"]
 
     class Log:
-        rows: list = []
+        def __init__(self):
+            self.rows = []
 
         def write(self, stage, event, **fields):
             self.rows.append((stage, event, fields))
