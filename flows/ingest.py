@@ -381,9 +381,11 @@ def ingest_swaths(
                 fut.cancel()
             if isinstance(exc, DescatterError):
                 # a cancelled task already running goes on to its end: let it finish writing
-                # before its staging group is deleted, or it would leave part of one behind
-                wait_for_running(client, {f.key for f in futures})
-                _discard_staging(store, plans)
+                # before its staging group is deleted, or it would leave part of one behind.
+                # If it is still running after the wait, the staging stays; it is never
+                # committed, and the next ingest of the file drops or resumes it.
+                if wait_for_running(client, {f.key for f in futures}):
+                    _discard_staging(store, plans)
                 runlog.write(STAGE, "error", error=str(exc))
             raise
         report.seconds = time.perf_counter() - t_start

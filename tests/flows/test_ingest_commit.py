@@ -319,6 +319,7 @@ def test_refusal_waits_for_cancelled_tasks_that_still_run(client, tmp_path):
         _time.sleep(0.02)
     fut.cancel()
     assert not marker.exists()  # still running
+    assert not wait_for_running(client, {fut.key}, timeout_s=0.05)  # a wait that ends first says so
     assert wait_for_running(client, {fut.key})
     assert marker.read_text() == "done"  # the wait lasted until the task had written
     assert wait_for_running(client, {"no-such-key"})  # nothing of ours running: returns at once
