@@ -203,11 +203,22 @@ def lps_from_arrays(a: dict[str, np.ndarray]) -> LogPowerSums:
     return LogPowerSums(sums, counts, cross, a["sum_sq"], int(np.asarray(a["n_traces"]).reshape(-1)[0]))
 
 
+def _map_timed(client, fn, store_path: str, swath: str, calls: list[tuple]) -> list:
+    """``_timed(fn, store_path, swath, *args)`` for each ``args`` in ``calls``, as
+    one graph update (a submit per task cost the flow process 2-8 ms each)."""
+    if not calls:
+        return []
+    columns = [list(c) for c in zip(*calls)]
+    n = len(calls)
+    return client.map(_timed, [fn] * n, [store_path] * n, [swath] * n, *columns, pure=False)
+
+
 def tree_sum(client, parts: list):
     """Sum futures pairwise in a fixed order: ((p0+p1)+(p2+p3))+..., the
-    same tree whatever finishes first, so results are bit-identical."""
+    same tree whatever finishes first, so results are bit-identical. One
+    graph update per level of the tree."""
     while len(parts) > 1:
-        nxt = [client.submit(add_parts, parts[i], parts[i + 1], pure=False) for i in range(0, len(parts) - 1, 2)]
+        nxt = client.map(add_parts, parts[0:len(parts) - 1:2], parts[1::2], pure=False)
         if len(parts) % 2:
             nxt.append(parts[-1])
         parts = nxt
@@ -260,11 +271,14 @@ def run_spectra(store: SurveyStore, records: list[SwathRecord], params: dict, n_
             create_spectra(store, rec.name, n_traces=rec.n_traces, n_freq=n_freq, chunk_traces=rec.chunk_traces)
             Checkpoints(store.path, "spectra", rec.name, fp).clear()
             write_json_atomic(_stage_marker(store, "spectra", rec.name), {"fingerprint": fp})
-        for chunk, (a, b) in enumerate(rec.chunk_bounds()):
-            # a key of this call's own: one equal to an earlier call's still-held future would be
-            # answered with that result, not run (another store with the same swath, a retry)
-            futures.append(client.submit(spectra_chunk, str(store.path), rec.name, chunk, a, b, params, fp,
-                                         key=f"spectra-{rec.name}-{chunk}-{token}", pure=False))
+        # keys of this call's own: one equal to an earlier call's still-held future would be
+        # answered with that result, not run (another store with the same swath, a retry);
+        # one graph update per swath (a submit per chunk cost the flow process 2-8 ms each)
+        bounds = rec.chunk_bounds()
+        futures += client.map(spectra_chunk, [str(store.path)] * len(bounds), [rec.name] * len(bounds),
+                              range(len(bounds)), [a for a, _ in bounds], [b for _, b in bounds],
+                              params=params, fingerprint=fp, pure=False,
+                              key=[f"spectra-{rec.name}-{chunk}-{token}" for chunk in range(len(bounds))])
     runlog.write("spectra", "start", swaths=[r.name for r in records], chunks=len(futures))
     done = 0
     for fut in as_completed(futures):
@@ -367,27 +381,26 @@ def run_statistics(store: SurveyStore, config: SurveyConfig, *, client, runlog: 
             # hash=False: equal objects scattered twice (empty pair sets of two swaths) would share one
             # key, and releasing the first would cancel the tasks of the second
             rp_f = client.scatter(rp, hash=False)
-            parts = []
-            for shots in _groups(g["shot"], est.shot_group_traces):
-                rows = np.flatnonzero(np.isin(g["shot"], shots) & g["live"])
-                parts.append(client.submit(_timed, receiver_pairs_task, str(store.path), rec.name, rows, g["shot"][rows],
-                                           g["receiver_index"][rows], rp_f, pure=False))
+            groups = [np.flatnonzero(np.isin(g["shot"], shots) & g["live"])
+                      for shots in _groups(g["shot"], est.shot_group_traces)]
+            parts = _map_timed(client, receiver_pairs_task, str(store.path), rec.name,
+                               [(rows, g["shot"][rows], g["receiver_index"][rows], rp_f) for rows in groups])
             wanted.append(("receiver_pairs", tree_sum(client, parts)))
         else:
             done_before.append((rec.name, "receiver_pairs"))
         if not ckpt.is_done(1):
             sp_f = client.scatter(sp, hash=False)
-            parts = [client.submit(_timed, source_pairs_task, str(store.path), rec.name,
-                                   *_side(g, np.isin(g["receiver_index"], recv)), sp_f, pure=False)
-                     for recv in _groups(g["receiver_index"][g["receiver_index"] >= 0], est.shot_group_traces)]
+            parts = _map_timed(client, source_pairs_task, str(store.path), rec.name,
+                               [(*_side(g, np.isin(g["receiver_index"], recv)), sp_f) for recv in
+                                _groups(g["receiver_index"][g["receiver_index"] >= 0], est.shot_group_traces)])
             wanted.append(("source_pairs", tree_sum(client, parts)))
         else:
             done_before.append((rec.name, "source_pairs"))
         if not ckpt.is_done(2):
             bins = offset_bins(g["offset"], bin_m=est.offset_bin_m)
-            parts = [client.submit(_timed, log_power_task, str(store.path), rec.name, a, b, g["source_index"][a:b],
-                                   g["receiver_index"][a:b], bins[a:b], g["live"][a:b], sizes, pure=False)
-                     for a, b in rec.chunk_bounds()]
+            parts = _map_timed(client, log_power_task, str(store.path), rec.name,
+                               [(a, b, g["source_index"][a:b], g["receiver_index"][a:b], bins[a:b], g["live"][a:b],
+                                 sizes) for a, b in rec.chunk_bounds()])
             wanted.append(("log_power", tree_sum(client, parts)))
         else:
             done_before.append((rec.name, "log_power"))
@@ -413,10 +426,10 @@ def run_statistics(store: SurveyStore, config: SurveyConfig, *, client, runlog: 
                 done_before.append((key, "source_pairs"))
                 continue
             bf = client.scatter(between, hash=False)
-            parts = [client.submit(_timed, source_pairs_between_task, str(store.path), prev.name, rec.name,
-                                   _side(gp, np.isin(gp["receiver_index"], recv)),
-                                   _side(g, np.isin(g["receiver_index"], recv)), bf, pure=False)
-                     for recv in _groups(_traces_at(common, gp, g), est.shot_group_traces)]
+            parts = _map_timed(client, source_pairs_between_task, str(store.path), prev.name,
+                               [(rec.name, _side(gp, np.isin(gp["receiver_index"], recv)),
+                                 _side(g, np.isin(g["receiver_index"], recv)), bf)
+                                for recv in _groups(_traces_at(common, gp, g), est.shot_group_traces)])
             jobs.append((key, "source_pairs", client.submit(write_stats_task, str(store.path), key, "source_pairs",
                                                             tree_sum(client, parts), fpx, pure=False)))
             report.stats_computed.append(key)
