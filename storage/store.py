@@ -51,7 +51,11 @@ SWATHS = "swaths"
 zarr.config.set({"array.write_empty_chunks": True})
 
 # Header bytes are kept raw; they compress well with zstd and are read rarely.
-_HEADER_CODEC = BloscCodec(cname="zstd", clevel=3, shuffle="noshuffle")
+# Level 1, not 3: on a swath's raw and decoded headers and QC flags (50,240
+# traces) 23.5x smaller against 29.4x, in 26 instead of 88 ms; a 4,000-trace
+# chunk of raw headers written in 3.0 instead of 8.1 ms (both measured, same
+# ratio 23 on the chunk).
+_HEADER_CODEC = BloscCodec(cname="zstd", clevel=1, shuffle="noshuffle")
 
 
 def _sample_codec(level: int) -> tuple:
