@@ -1,10 +1,12 @@
 """Ingest: SEG-Y swaths into the survey store, in parallel on Dask.
 
 Each chunk task reads one block of whole traces and writes exactly the
-matching chunk of every per-trace array, then its done-flag. Once a swath's
-chunks are done, a geometry task (also on a worker, chained on them)
-decodes its header fields, builds its geometry and QC and writes them, all
-inside the swath's own staging group. The driver then does only the serial
+matching chunk of every per-trace array, then its done-flag. Beside them a
+geometry task (also on a worker) reads the swath's trace headers from the
+file, decodes its header fields, builds its geometry and writes them; once
+the chunks and the geometry are done, a flags task joins the chunks' sample
+flags with the geometry flags into the QC mask. All of it stays inside the
+swath's own staging group. The driver then does only the serial
 part, in the order the files were given: it appends the swath's new
 stations to the shared station tables, re-points the swath's station
 indices if an earlier swath of the same ingest added stations, and commits
@@ -33,12 +35,12 @@ from descatter.storage.faults import fault_point
 from descatter.storage.lock import StoreLock
 from descatter.storage.runlog import RunLog
 from descatter.storage.segy import (
-    SegyInfo, decode_fields, quick_fingerprint, read_block, scale_coordinates, scan_segy,
+    SegyInfo, decode_fields, quick_fingerprint, read_block, read_trace_headers, scale_coordinates, scan_segy,
 )
 from descatter.flows.sps_geometry import SAMPLE_BITS
 from descatter.storage.store import SurveyStore, SwathRecord, chunk_bounds, create_header_fields, write_trace_chunk
 from descatter.tasks.geometry import assign_stations
-from descatter.tasks.swath_geometry import swath_geometry
+from descatter.tasks.swath_geometry import header_geometry, merge_sample_flags
 from descatter.storage.sps import read_sps, sps_trace_geometry
 from descatter.storage.stations import (
     KINDS, StationAppender, read_stations, renumber_stations, write_qc_flags, write_swath_geometry,
@@ -105,18 +107,20 @@ def ingest_chunk(
 
 def ingest_geometry(
     store_path: str, info: SegyInfo, swath: str, config: SurveyConfig, known: dict[str, int],
-    sps_files: list[str] | None, chunks: list[dict],
+    sps_files: list[str] | None,
 ) -> dict:
-    """One swath, once every chunk is written (``chunks``: their summaries,
-    passed only to order this task after them): decode the header fields,
-    build the geometry and QC, write them, all in the swath's staging group.
+    """One swath's geometry, while its chunks are read: decode the header
+    fields (read from the SEG-Y file, not from the chunks' copy), build the
+    geometry and its flags (:func:`~descatter.tasks.swath_geometry.header_geometry`),
+    write the header fields and geometry, all in the swath's staging group.
+    The sample flags join them in :func:`ingest_flags`, once the chunks are done.
 
     Stations are looked up in the first ``known`` rows of each table (its
     committed length when the ingest began); the driver gives stations that
     an earlier swath of the same ingest appended meanwhile their final rows
     (:func:`_commit`). Returns the new station rows found against those
-    rows, the warnings and the seconds taken. Redone whole on a resumed
-    ingest: it only rewrites arrays of an uncommitted swath.
+    rows, the geometry flags, the warnings and the seconds taken. Redone
+    whole on a resumed ingest: it only rewrites arrays of an uncommitted swath.
     """
     t0 = time.perf_counter()
     store = SurveyStore.open(store_path)
@@ -125,12 +129,30 @@ def ingest_geometry(
     if sps_files:
         sps = read_sps(*sps_files, revision=config.geometry.sps_revision,
                        columns=config.geometry.sps_columns or None)
-    geom = build_geometry(store, swath, config, sps, headers=headers, known=known)
+    trace_sps = sps_trace_geometry(sps, headers["field_record"], headers["channel"]) if sps else None
+    keys = {kind: read_stations(store, kind, n=known.get(kind), fields=("key",))["key"] for kind in KINDS}
+    geom = header_geometry(swath, headers, config, known_sources=keys["sources"], known_receivers=keys["receivers"],
+                           sps=trace_sps)
     write_swath_geometry(store, swath, geom.arrays, chunk_traces=config.ingest.chunk_traces)
-    write_qc_flags(store, swath, geom.flags)
-    return {"swath": swath, "new_sources": geom.new_sources,
-            "new_receivers": geom.new_receivers, "warnings": geom.warnings,
-            "seconds": time.perf_counter() - t0}
+    return {"swath": swath, "new_sources": geom.new_sources, "new_receivers": geom.new_receivers,
+            "flags": geom.flags, "warnings": geom.warnings, "seconds": time.perf_counter() - t0}
+
+
+def ingest_flags(store_path: str, swath: str, config: SurveyConfig, built: dict, chunks: list[dict]) -> dict:
+    """Once every chunk is written (``chunks``: their summaries, passed only to
+    order this task after them): join the chunks' sample flags with the
+    geometry task's flags (``built``) and write the swath's QC mask. Raises
+    :class:`TraceQcError` for a flag whose policy is ``error``. Returns
+    ``built`` without its flags, with the flagged-traces warning first and
+    the seconds of both tasks."""
+    t0 = time.perf_counter()
+    store = SurveyStore.open(store_path)
+    # sample bits only: a resumed ingest finds the joined mask an earlier attempt wrote
+    sample = store.array(swath, "qc_flags")[:] & np.uint16(SAMPLE_BITS)
+    flags, warnings = merge_sample_flags(swath, built["flags"], sample, config)
+    write_qc_flags(store, swath, flags)
+    out = {k: v for k, v in built.items() if k != "flags"}
+    return {**out, "warnings": warnings + built["warnings"], "seconds": built["seconds"] + time.perf_counter() - t0}
 
 
 # worker task states of a task still running (cancelled ones run to their end)
@@ -298,6 +320,7 @@ def ingest_swaths(
         runlog.write(STAGE, "start", swaths=[p.name for p in plans],
                      traces=sum(p.info.n_traces for p in plans))
         futures: dict = {}
+        background: list = []  # awaited through the flags tasks; cancelled with the rest
         try:
             geometry_futures = set()
             # Geometry tasks look stations up in the tables as committed now;
@@ -324,10 +347,14 @@ def ingest_swaths(
                     key=[f"ingest-{plan.name}-{chunk}-{token}" for chunk in range(n)],
                 )
                 futures.update(dict.fromkeys(chunk_futures, plan))
-                fut = client.submit(
+                # the geometry is built beside the chunks; the flags task joins both
+                geometry = client.submit(
                     ingest_geometry, str(store_path), plan.info, plan.name, config, counts, sps_files,
-                    chunk_futures, key=f"ingest-geometry-{plan.name}-{token}", pure=False,
+                    key=f"ingest-geometry-{plan.name}-{token}", pure=False,
                 )
+                background.append(geometry)
+                fut = client.submit(ingest_flags, str(store_path), plan.name, config, geometry, chunk_futures,
+                                    key=f"ingest-flags-{plan.name}-{token}", pure=False)
                 futures[fut] = plan
                 geometry_futures.add(fut)
             digests: dict[str, dict[int, str]] = {p.name: {} for p in plans}
@@ -377,14 +404,14 @@ def ingest_swaths(
                     report.traces += ready.info.n_traces
                     next_commit += 1
         except BaseException as exc:
-            for fut in futures:
+            for fut in [*futures, *background]:
                 fut.cancel()
             if isinstance(exc, DescatterError):
                 # a cancelled task already running goes on to its end: let it finish writing
                 # before its staging group is deleted, or it would leave part of one behind.
                 # If it is still running after the wait, the staging stays; it is never
                 # committed, and the next ingest of the file drops or resumes it.
-                if wait_for_running(client, {f.key for f in futures}):
+                if wait_for_running(client, {f.key for f in [*futures, *background]}):
                     _discard_staging(store, plans)
                 runlog.write(STAGE, "error", error=str(exc))
             raise
@@ -403,38 +430,22 @@ def load_sps_geometry(store: SurveyStore, config: SurveyConfig):
 
 
 def decode_headers(store: SurveyStore, name: str, info: SegyInfo, layout: dict[str, tuple[int, int]]) -> dict:
-    """Decode a staged swath's raw trace headers into ``headers/<field>``.
+    """Decode a staged swath's trace headers, read from its SEG-Y file, into ``headers/<field>``.
 
     Done once per swath, whole-array, by its geometry task: the 240 header
     bytes are small beside the samples, and one write per field costs far
     less than one per field and chunk (zarr's per-write overhead dominated
-    the ingest chunks when they wrote 16 header arrays each).
+    the ingest chunks when they wrote 16 header arrays each). Read from the
+    file, not from the chunks' ``trace_headers``, so the geometry is built
+    while the chunks are read.
     """
-    raw_array = store.array(name, "trace_headers")
-    raw = raw_array[:]
+    raw = read_trace_headers(info)
     ints = decode_fields(raw, layout, info.byte_order)
     scaled = scale_coordinates(ints, info.measurement_system)
     fields = {f: (scaled[f] if f in SCALED_FIELDS else ints[f]) for f in layout}
-    create_header_fields(store, name, fields, header_dtypes(layout), chunk_traces=raw_array.chunks[0])
+    chunk_traces = store.array(name, "trace_headers").chunks[0]  # the swath's chunks, as staged
+    create_header_fields(store, name, fields, header_dtypes(layout), chunk_traces=chunk_traces)
     return fields
-
-
-def build_geometry(store: SurveyStore, name: str, config: SurveyConfig, sps=None, headers=None,
-                   known: dict[str, int] | None = None):
-    """Geometry and QC of a staged or committed swath from its stored headers.
-
-    Stations are looked up in the first ``known[kind]`` rows of each table
-    (default: its committed length). The stored QC flags are read for their
-    sample bits only, so a geometry built twice (a resumed ingest) starts
-    from the chunk tasks' flags, not from the flags written the first time.
-    """
-    headers = headers if headers is not None else store.headers(name)
-    trace_sps = sps_trace_geometry(sps, headers["field_record"], headers["channel"]) if sps else None
-    flags = store.array(name, "qc_flags")[:] & np.uint16(SAMPLE_BITS)
-    known = known or {}
-    keys = {kind: read_stations(store, kind, n=known.get(kind), fields=("key",))["key"] for kind in KINDS}
-    return swath_geometry(name, headers, flags, config, known_sources=keys["sources"],
-                          known_receivers=keys["receivers"], sps=trace_sps)
 
 
 class _Appended:

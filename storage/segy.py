@@ -42,6 +42,7 @@ __all__ = [
     "decode_fields",
     "quick_fingerprint",
     "read_block",
+    "read_trace_headers",
     "scale_coordinates",
     "ScaledCoordinates",
     "scan_segy",
@@ -443,6 +444,16 @@ def read_block(
     if not threaded:
         hasher.run()
     return samples, headers, hasher.value
+
+
+def read_trace_headers(info: SegyInfo, start: int = 0, stop: int | None = None) -> np.ndarray:
+    """The raw 240-byte trace headers of traces ``start:stop`` (default: all),
+    uint8 [n, 240] as in the file, without decoding the samples; raises as
+    :func:`read_block`."""
+    raw = _open_traces(info, start, info.n_traces if stop is None else stop)
+    if raw.size == 0:
+        return np.empty((0, TRACE_HEADER_BYTES), np.uint8)
+    return np.array(_trace_records(raw, info)["header"])
 
 
 def _decode_records(info: SegyInfo, raw: np.ndarray, start: int, stop: int) -> tuple[np.ndarray, np.ndarray]:

@@ -75,7 +75,47 @@ def swath_geometry(
     positions and station numbers from :func:`storage.sps.sps_trace_geometry`
     to use instead of the header coordinates. ``known_*``: int64 keys of the
     committed station tables. Raises :class:`TraceQcError` when a flag whose
-    policy is ``error`` is found.
+    policy is ``error`` is found. :func:`header_geometry`, then
+    :func:`merge_sample_flags`.
+    """
+    geom = header_geometry(swath, headers, config, known_sources=known_sources, known_receivers=known_receivers,
+                           sps=sps)
+    flags, warnings = merge_sample_flags(swath, geom.flags, sample_flags, config)
+    return SwathGeometry(geom.arrays, geom.new_sources, geom.new_receivers, flags, warnings + geom.warnings)
+
+
+def merge_sample_flags(swath: str, geometry_flags: np.ndarray, sample_flags: np.ndarray,
+                       config: SurveyConfig) -> tuple[np.ndarray, list[str]]:
+    """The QC mask of a swath: the flags from its samples (dead, NaN, clipped)
+    joined with those of :func:`header_geometry` (geometry flags, exclusions).
+
+    Returns ``(flags uint16 [n], warnings)``, the warning counting the flagged
+    traces; raises :class:`TraceQcError` for a flag whose policy is ``error``.
+    """
+    flags = np.asarray(sample_flags, np.uint16) | np.asarray(geometry_flags, np.uint16)
+    try:
+        trace_qc.raise_on_flags(flags, error_bits=config.qc.error_bits())
+    except TraceQcError as exc:
+        raise TraceQcError(f"swath {swath!r}: {exc}") from None
+    counts = {k: v for k, v in trace_qc.flag_counts(flags).items() if v}
+    warnings = [f"swath {swath!r}: flagged traces {counts} (see 'descatter qc')"] if counts else []
+    return flags, warnings
+
+
+def header_geometry(
+    swath: str,
+    headers: dict[str, np.ndarray],
+    config: SurveyConfig,
+    *,
+    known_sources: np.ndarray,
+    known_receivers: np.ndarray,
+    sps: dict[str, np.ndarray] | None = None,
+) -> SwathGeometry:
+    """What :func:`swath_geometry` finds from the headers (or SPS) alone, without
+    the samples: ``flags`` hold the geometry flags and the user's exclusions
+    only, ``warnings`` the traces without coordinates. So the geometry of a
+    swath can be built while its samples are still being read; join the
+    sample flags with :func:`merge_sample_flags`.
     """
     src = sps if sps is not None else headers
     sx, sy = np.asarray(src["source_x"], float), np.asarray(src["source_y"], float)
@@ -106,7 +146,7 @@ def swath_geometry(
     }
 
     duplicate = trace_qc.duplicate_traces(s_keys, r_keys) & valid
-    flags = np.asarray(sample_flags, np.uint16) | trace_qc.header_flags(
+    flags = trace_qc.header_flags(
         sx, sy, rx, ry, np.asarray(headers["offset"], float),
         offset_tolerance_m=config.geometry.offset_tolerance_m, duplicate=duplicate)
     qc = config.qc
@@ -116,14 +156,7 @@ def swath_geometry(
         exclude_sources=qc.source_keys(config.geometry), exclude_receivers=qc.receiver_keys(config.geometry),
         exclude_field_records=qc.exclude_field_records, exclude_ranges=qc.trace_ranges(swath),
     )
-    try:
-        trace_qc.raise_on_flags(flags, error_bits=qc.error_bits())
-    except TraceQcError as exc:
-        raise TraceQcError(f"swath {swath!r}: {exc}") from None
     warnings = []
-    counts = {k: v for k, v in trace_qc.flag_counts(flags).items() if v}
-    if counts:
-        warnings.append(f"swath {swath!r}: flagged traces {counts} (see 'descatter qc')")
     if missing.any():
         warnings.append(f"swath {swath!r}: {int(missing.sum())} trace(s) without coordinates get no station")
     return SwathGeometry(arrays, new_sources, new_receivers, flags, warnings)
