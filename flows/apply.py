@@ -19,6 +19,7 @@ from pathlib import Path
 
 import numpy as np
 
+from descatter.flows.cluster import map_chunks
 from descatter.flows.writer import store_writer
 from descatter.storage.checkpoints import Checkpoints
 from descatter.storage.estimation import (
@@ -285,13 +286,9 @@ def apply_solution(store_path: str | Path, config: SurveyConfig, *, client, solu
                 changed_f[u] = masks[old_sid]
             if grids_f is None:
                 grids_f = client.scatter(station_grids(sol, settings), hash=False, broadcast=True)
-            # one graph update per swath (a submit per chunk cost the flow process 2-8 ms each)
-            bounds = rec.chunk_bounds()
-            futures += client.map(apply_chunk, [str(store.path)] * len(bounds), [rec.name] * len(bounds),
-                                  range(len(bounds)), [a for a, _ in bounds], [b for _, b in bounds],
-                                  solution_id=sid, index=index, settings=settings_f, fingerprint=fp,
-                                  changed=changed_f, grids=grids_f, pure=False,
-                                  key=[f"apply-{rec.name}-{chunk}-{token}" for chunk in range(len(bounds))])
+            futures += map_chunks(client, apply_chunk, str(store.path), rec.name, rec.chunk_bounds(),
+                                  key=f"apply-{rec.name}-{token}", solution_id=sid, index=index,
+                                  settings=settings_f, fingerprint=fp, changed=changed_f, grids=grids_f)
         runlog.write(STAGE, "start", solution=sid, chunks=len(futures), mode=settings["mode"],
                      prewhitening=settings["prewhitening"], reapply_tolerance=tolerance)
         total = sum(r.n_traces for r in records)

@@ -22,6 +22,7 @@ from typing import Callable
 
 import numpy as np
 
+from descatter.flows.cluster import map_chunks
 from descatter.storage.atomic import read_json, write_json_atomic
 from descatter.storage.checkpoints import CHECKPOINTS, Checkpoints
 from descatter.storage.estimation import (
@@ -272,13 +273,9 @@ def run_spectra(store: SurveyStore, records: list[SwathRecord], params: dict, n_
             Checkpoints(store.path, "spectra", rec.name, fp).clear()
             write_json_atomic(_stage_marker(store, "spectra", rec.name), {"fingerprint": fp})
         # keys of this call's own: one equal to an earlier call's still-held future would be
-        # answered with that result, not run (another store with the same swath, a retry);
-        # one graph update per swath (a submit per chunk cost the flow process 2-8 ms each)
-        bounds = rec.chunk_bounds()
-        futures += client.map(spectra_chunk, [str(store.path)] * len(bounds), [rec.name] * len(bounds),
-                              range(len(bounds)), [a for a, _ in bounds], [b for _, b in bounds],
-                              params=params, fingerprint=fp, pure=False,
-                              key=[f"spectra-{rec.name}-{chunk}-{token}" for chunk in range(len(bounds))])
+        # answered with that result, not run (another store with the same swath, a retry)
+        futures += map_chunks(client, spectra_chunk, str(store.path), rec.name, rec.chunk_bounds(),
+                              key=f"spectra-{rec.name}-{token}", params=params, fingerprint=fp)
     runlog.write("spectra", "start", swaths=[r.name for r in records], chunks=len(futures))
     done = 0
     for fut in as_completed(futures):

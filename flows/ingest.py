@@ -37,6 +37,7 @@ from descatter.storage.runlog import RunLog
 from descatter.storage.segy import (
     SegyInfo, decode_fields, quick_fingerprint, read_block, read_trace_headers, scale_coordinates, scan_segy,
 )
+from descatter.flows.cluster import map_chunks
 from descatter.flows.sps_geometry import SAMPLE_BITS
 from descatter.storage.store import SurveyStore, SwathRecord, chunk_bounds, create_header_fields, write_trace_chunk
 from descatter.tasks.geometry import assign_stations
@@ -79,7 +80,7 @@ def header_dtypes(layout: dict[str, tuple[int, int]]) -> dict[str, str]:
 
 
 def ingest_chunk(
-    store_path: str, info: SegyInfo, swath: str, chunk: int, start: int, stop: int,
+    store_path: str, swath: str, chunk: int, start: int, stop: int, info: SegyInfo,
     fingerprint: str, clip_run: int,
 ) -> dict:
     """One chunk: read traces [start, stop), write every array's chunk, flag it.
@@ -338,14 +339,9 @@ def ingest_swaths(
                 resumed = _prepare_staging(store, plan, config)
                 if resumed:
                     log.info("resuming staged swath %s", plan.name)
-                # one graph update per swath (a submit per chunk cost the flow process 2-8 ms each)
-                n = len(plan.bounds)
-                chunk_futures = client.map(
-                    ingest_chunk, [str(store_path)] * n, [plan.info] * n, [plan.name] * n, range(n),
-                    [a for a, _ in plan.bounds], [b for _, b in plan.bounds],
-                    fingerprint=plan.fingerprint, clip_run=config.qc.clip_run, pure=False,
-                    key=[f"ingest-{plan.name}-{chunk}-{token}" for chunk in range(n)],
-                )
+                chunk_futures = map_chunks(client, ingest_chunk, str(store_path), plan.name, plan.bounds,
+                                           key=f"ingest-{plan.name}-{token}", info=plan.info,
+                                           fingerprint=plan.fingerprint, clip_run=config.qc.clip_run)
                 futures.update(dict.fromkeys(chunk_futures, plan))
                 # the geometry is built beside the chunks; the flags task joins both
                 geometry = client.submit(
