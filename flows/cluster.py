@@ -323,9 +323,10 @@ def map_chunks(client, fn, store_path: str, swath: str, bounds: list[tuple[int, 
     """``fn(store_path, swath, chunk, start, stop, **constants)`` for every chunk
     of a swath (``bounds``: the chunks' (start, stop) rows), sent to the
     scheduler as one graph update; a submit per chunk cost the flow process
-    2-8 ms each. Task keys are ``f"{key}-{chunk}"``: give a prefix unique to
-    the call, since the scheduler answers a key it still holds with the held
-    result instead of running the task again. Returns the futures in chunk order.
+    1-8 ms each (measured: 1.2-2.2 ms quiet, 8 ms busy). Task keys are
+    ``f"{key}-{chunk}"``: give a prefix unique to the call, since the
+    scheduler answers a key it still holds with the held result instead of
+    running the task again. Returns the futures in chunk order.
     """
     n = len(bounds)
     return client.map(fn, [store_path] * n, [swath] * n, range(n), [a for a, _ in bounds], [b for _, b in bounds],

@@ -206,7 +206,7 @@ def lps_from_arrays(a: dict[str, np.ndarray]) -> LogPowerSums:
 
 def _map_timed(client, fn, store_path: str, swath: str, calls: list[tuple]) -> list:
     """``_timed(fn, store_path, swath, *args)`` for each ``args`` in ``calls``, as
-    one graph update (a submit per task cost the flow process 2-8 ms each)."""
+    one graph update (a submit per task cost the flow process 1-8 ms each)."""
     if not calls:
         return []
     columns = [list(c) for c in zip(*calls)]

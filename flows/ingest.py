@@ -38,7 +38,7 @@ from descatter.storage.segy import (
     SegyInfo, decode_fields, quick_fingerprint, read_block, read_trace_headers, scale_coordinates, scan_segy,
 )
 from descatter.flows.cluster import map_chunks
-from descatter.flows.sps_geometry import SAMPLE_BITS
+from descatter.flows.sps_geometry import stored_sample_flags
 from descatter.storage.store import SurveyStore, SwathRecord, chunk_bounds, create_header_fields, write_trace_chunk
 from descatter.tasks.geometry import assign_stations
 from descatter.tasks.swath_geometry import header_geometry, merge_sample_flags
@@ -149,7 +149,7 @@ def ingest_flags(store_path: str, swath: str, config: SurveyConfig, built: dict,
     t0 = time.perf_counter()
     store = SurveyStore.open(store_path)
     # sample bits only: a resumed ingest finds the joined mask an earlier attempt wrote
-    sample = store.array(swath, "qc_flags")[:] & np.uint16(SAMPLE_BITS)
+    sample = stored_sample_flags(store, swath)
     flags, warnings = merge_sample_flags(swath, built["flags"], sample, config)
     write_qc_flags(store, swath, flags)
     out = {k: v for k, v in built.items() if k != "flags"}

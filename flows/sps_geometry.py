@@ -29,6 +29,12 @@ log = logging.getLogger(__name__)
 SAMPLE_BITS = FLAG_BITS["dead"] | FLAG_BITS["nan"] | FLAG_BITS["clipped"]
 
 
+def stored_sample_flags(store: SurveyStore, swath: str) -> np.ndarray:
+    """The sample bits (dead, NaN, clipped) of a swath's stored QC flags, uint16 [n]:
+    what its ingest chunks found, whatever geometry flags were joined to them since."""
+    return store.array(swath, "qc_flags")[:] & np.uint16(SAMPLE_BITS)
+
+
 @dataclass
 class SpsReport:
     traces: int = 0
@@ -58,7 +64,7 @@ def apply_sps_geometry(store_path: str | Path, paths: list[Path], config: Survey
             report.n_disagreeing += len(dis["trace"])
             for i in range(min(report_rows, len(dis["trace"]))):
                 report.disagreements.append({"swath": rec.name, **{k: v[i].item() for k, v in dis.items()}})
-            flags = store.array(rec.name, "qc_flags")[:] & np.uint16(SAMPLE_BITS)
+            flags = stored_sample_flags(store, rec.name)
             geom = swath_geometry(rec.name, headers, flags, config, known_sources=known["sources"],
                                   known_receivers=known["receivers"], sps=tg)
             known["sources"] = np.concatenate([known["sources"], geom.new_sources["key"]])

@@ -451,15 +451,18 @@ def read_trace_headers(info: SegyInfo, start: int = 0, stop: int | None = None) 
     uint8 [n, 240] as in the file, without decoding the samples; raises as
     :func:`read_block`."""
     raw = _open_traces(info, start, info.n_traces if stop is None else stop)
-    if raw.size == 0:
-        return np.empty((0, TRACE_HEADER_BYTES), np.uint8)
-    return np.array(_trace_records(raw, info)["header"])
+    return _raw_headers(_trace_records(raw, info))
+
+
+def _raw_headers(records: np.ndarray) -> np.ndarray:
+    """The headers of trace records, copied: uint8 [n, 240]."""
+    return np.array(records["header"]) if len(records) else np.empty((0, TRACE_HEADER_BYTES), np.uint8)
 
 
 def _decode_records(info: SegyInfo, raw: np.ndarray, start: int, stop: int) -> tuple[np.ndarray, np.ndarray]:
     n = raw.size // info.trace_bytes
     records = _trace_records(raw, info)
-    headers = np.array(records["header"]) if n else np.empty((0, TRACE_HEADER_BYTES), np.uint8)
+    headers = _raw_headers(records)
     samples = np.empty((n, info.n_samples), dtype=np.float32)
     if n and info.format_code == 1:
         try:
