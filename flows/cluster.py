@@ -109,6 +109,12 @@ def _worker_environ() -> None:
     dask.config.set({f"distributed.nanny.pre-spawn-environ.{k}": v for k, v in WORKER_MALLOC_ENV.items()})
 
 
+# Imported by every worker as it starts (flows/worker_setup.py): the stage modules. Measured on
+# 502,400 traces, 3 alternating runs of the three stages on a fresh local cluster: median
+# 28.75 -> 27.68 s in all, ingest 3.76 -> 3.22 s, for 0.35 -> 0.75 s of cluster start.
+WORKER_PRELOAD = "descatter.flows.worker_setup"
+
+
 def local_cluster_kwargs(profile: LocalProfile) -> dict[str, Any]:
     """``distributed.LocalCluster`` keywords of a local profile."""
     kwargs: dict[str, Any] = dict(
@@ -117,6 +123,7 @@ def local_cluster_kwargs(profile: LocalProfile) -> dict[str, Any]:
         processes=profile.processes,
         dashboard_address=profile.dashboard_address,
         silence_logs=logging.WARNING,
+        preload=[WORKER_PRELOAD],
     )
     if profile.memory_limit:
         kwargs["memory_limit"] = profile.memory_limit
@@ -133,6 +140,7 @@ def jobqueue_job_kwargs(profile: SlurmProfile | PbsProfile) -> dict[str, Any]:
         processes=job.processes,
         walltime=job.walltime,
         job_name="descatter-worker",
+        worker_extra_args=["--preload", WORKER_PRELOAD],
         job_extra_directives=list(job.extra_directives),
         job_script_prologue=list(job.prologue),
     )

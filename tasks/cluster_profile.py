@@ -231,7 +231,8 @@ class KubernetesProfile(_Part):
     namespace: str | None = Field(None, description="namespace; leave out for the current one")
     image: str = Field(description="container image with descatter installed, for scheduler and workers")
     workers: int = Field(ge=1, description="worker pods")
-    worker_command: str = Field("dask-worker --nthreads 1", description="command that starts a worker in its pod")
+    worker_command: str = Field("dask-worker --nthreads 1 --preload descatter.flows.worker_setup",
+                                description="command that starts a worker in its pod")
     idle_timeout_s: int = Field(0, ge=0, description="seconds idle before Kubernetes deletes the cluster; 0 never")
     resource_timeout_s: int = Field(300, gt=0, description="seconds to wait for the cluster's resources to come up")
     resources: PodResources = Field(default_factory=PodResources)

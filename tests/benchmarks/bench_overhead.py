@@ -143,14 +143,11 @@ def run(n_traces: int | None = None, size: str | None = "demo", workers: int = 2
                 runs[label] = account(runlog_since(store, start), start=start, stop=stop, workers=workers)
             # the service set-up: a Dask cluster already running (a scheduler the flow connects
             # to, as with --cluster tcp://HOST:PORT), started the way the flow starts its own
-            from distributed import Client
-
             from descatter.flows.cluster import build_cluster
             from descatter.tasks.cluster_profile import LocalProfile
 
-            with build_cluster(LocalProfile(workers=workers)) as lc:
-                with Client(lc) as warm:
-                    warm.run(lambda: __import__("descatter.flows.ingest"))  # imports, as a running service has
+            # (its workers import the stage modules as they start: flows/worker_setup.py)
+            with build_cluster(LocalProfile(workers=workers)) as lc:  # returns with its workers joined
                 running = tmp / "running.zarr"
                 start = time.time()
                 run_flow(str(running), files, str(synth.config), cluster=lc.scheduler_address)
@@ -175,11 +172,14 @@ def run(n_traces: int | None = None, size: str | None = "demo", workers: int = 2
           f"Prefect's share of the first run {(first['wall'] - direct) / first['wall']:.2f})", file=out)
     print("chunk seconds per stage (run log): " + ", ".join(f"{k} {v:.2f}" for k, v in first["chunk_seconds"].items()),
           file=out)
-    if "split" in first:
-        print("first run's wall, split by the run log's stage records:", file=out)
-        for k, v in first["split"].items():
-            print(f"  {k:<56}{v:>8.2f} s {v / first['wall']:>6.1%}", file=out)
-        print("  stage walls: " + ", ".join(f"{k} {v:.2f} s" for k, v in first["stage_wall"].items()), file=out)
+    for label in ("first run", "on a running cluster"):
+        r = runs[label]
+        if "split" not in r:
+            continue
+        print(f"{label}: wall split by the run log's stage records:", file=out)
+        for k, v in r["split"].items():
+            print(f"  {k:<56}{v:>8.2f} s {v / r['wall']:>6.1%}", file=out)
+        print("  stage walls: " + ", ".join(f"{k} {v:.2f} s" for k, v in r["stage_wall"].items()), file=out)
     out.flush()
     return {"runs": runs, "direct": direct, "server_s": server_s, "traces": synth.traces, "workers": workers}
 

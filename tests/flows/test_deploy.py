@@ -283,6 +283,8 @@ def test_batch_dry_run_job_script_books_the_configured_job(tmp_path):
         from dask.utils import format_bytes  # reference: how dask-worker is told its memory
 
         assert f"--memory-limit {format_bytes(n_bytes // job.processes).replace(' ', '')}" in script
+        # each worker imports the stage modules as it starts (dask-worker's --preload)
+        assert "--preload descatter.flows.worker_setup" in script
 
 
 def test_batch_dry_run_is_dask_jobqueues_own_job_script(tmp_path):
@@ -392,6 +394,9 @@ def test_kubernetes_dry_run_spec_has_the_image_and_worker_count(tmp_path):
     assert worker["args"][: len(profile.worker_command.split())] == profile.worker_command.split()
     custom = _write(tmp_path / "k.toml", 'kind = "kubernetes"\nname = "line-06"\nimage = "site/descatter:2"\nworkers = 3\n')
     spec = build_cluster(str(custom), dry_run=True).spec
+    # the shipped profile and the default command both preload the stage modules
+    for command in (profile.worker_command, spec["spec"]["worker"]["spec"]["containers"][0]["args"]):
+        assert "--preload descatter.flows.worker_setup" in " ".join(command if isinstance(command, list) else [command])
     assert spec["spec"]["worker"]["replicas"] == 3
     assert spec["spec"]["worker"]["spec"]["containers"][0]["image"] == "site/descatter:2"
     assert build_cluster(str(custom), dry_run=True, workers=5).spec["spec"]["worker"]["replicas"] == 5
@@ -509,10 +514,15 @@ def test_submit_through_a_prefect_server_and_worker(tmp_path):
         worker_log.close()
 
 
-def test_local_workers_get_the_allocator_settings():
+def test_local_workers_start_with_the_allocator_settings_and_the_stage_modules():
     # the environment a local worker process starts with (flows/cluster.py WORKER_MALLOC_ENV)
     from descatter.flows.cluster import WORKER_MALLOC_ENV
 
     with dask_client("local", workers=1) as client:
         seen = client.run(lambda: {k: os.environ.get(k) for k in WORKER_MALLOC_ENV})
+        # and, before any task, the stage modules (flows/worker_setup.py, Dask's worker preload)
+        loaded = client.run(lambda: sorted(m for m in sys.modules if m.startswith("descatter.flows.")))
     assert list(seen.values()) == [{k: str(v) for k, v in WORKER_MALLOC_ENV.items()}]
+    (modules,) = loaded.values()
+    assert {"descatter.flows.ingest", "descatter.flows.estimate", "descatter.flows.solve",
+            "descatter.flows.apply"} <= set(modules)
