@@ -263,7 +263,7 @@ def apply_solution(store_path: str | Path, config: SurveyConfig, *, client, solu
         # scattered once: passed by value, its lists (band, prewhitening spectrum) were walked by
         # Dask for every chunk's task
         settings_f = client.scatter(settings, hash=False, broadcast=True)
-        token = uuid.uuid4().hex[:8]  # task keys of this call only (see run_spectra)
+        token = uuid.uuid4().hex[:8]  # task keys of this call only (see submit_spectra)
         for rec in records:
             fp = hashlib.blake2b(json.dumps({"v": STAGE_VERSION, "swath": rec.fingerprint, **fixed},
                                             sort_keys=True).encode(), digest_size=16).hexdigest()
