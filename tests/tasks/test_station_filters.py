@@ -181,6 +181,36 @@ def test_the_delay_scan_finds_the_global_maximum(phase_rotation):
     np.testing.assert_allclose(delay, taus[np.argmax(val, axis=1)], atol=1e-5)
 
 
+@pytest.mark.parametrize("phase_rotation", [False, True])
+def test_grid_candidates_worked_out_at_the_maxima_equal_the_whole_grid_formula(phase_rotation):
+    # the parabola heights and shifts are computed at the local maxima and the picks only; the
+    # reference computes them at every grid point, as the scan first did (bit for bit the same)
+    from scipy import fft as sfft
+
+    from descatter.tasks.station_filters import _grid_candidates
+
+    rng = np.random.default_rng(8)
+    f = band(10, 65)
+    c = rng.standard_normal((40, len(f))) + 1j * rng.standard_normal((40, len(f)))
+    c[3] = 0.0  # no maximum at all: the picks fall on flat grid points
+    c[4] = np.exp(-2j * np.pi * f * 0.01)  # one clean peak, fewer maxima than candidates
+    size, k = 1080, 3
+    period = 1 / (f[1] - f[0])
+    step = period / size
+    tau_grid = np.arange(size) * step
+    tau_grid = tau_grid - period * (tau_grid > period / 2)
+    g = sfft.ifft(c, size, axis=1) * size * np.exp(2j * np.pi * f[0] * tau_grid)
+    val = np.abs(g) ** 2 if phase_rotation else g.real**2
+    before, after = np.roll(val, 1, axis=1), np.roll(val, -1, axis=1)
+    curve = before - 2 * val + after
+    shift = np.where(curve < 0, 0.5 * (before - after) / np.where(curve < 0, curve, -1.0), 0.0)
+    height = np.where((val > before) & (val >= after), val - 0.25 * (before - after) * shift, -1.0)
+    top = np.argpartition(-height, k - 1, axis=1)[:, :k]
+    reference = tau_grid[top] + step * np.take_along_axis(np.clip(shift, -0.5, 0.5), top, axis=1)
+    got = _grid_candidates(c, f, size=size, phase_rotation=phase_rotation, candidates=k)
+    np.testing.assert_array_equal(got, reference)
+
+
 @pytest.mark.parametrize("phi", [0.1, 0.3, 0.5])
 def test_a_spike_with_an_orthogonal_coda_scatters_its_coda_fraction(phi):
     rng = np.random.default_rng(5)
