@@ -175,9 +175,9 @@ def ingest(
     from descatter.storage.config_file import load_config
 
     load_config(config)  # a bad config fails here, before Prefect and the cluster start
-    from descatter.flows.service import ingest_flow
+    from descatter.flows.service import ingest_flow, local_run
 
-    with _progress("ingest") as bar:
+    with _progress("ingest") as bar, local_run():
         tasks: dict[str, int] = {}
 
         def progress(swath: str, done: int, total: int) -> None:
@@ -215,9 +215,9 @@ def estimate(
     from descatter.storage.config_file import config_for_store
 
     config_for_store(store, config)  # a bad store or config fails here, before Prefect and the cluster start
-    from descatter.flows.service import estimate_flow
+    from descatter.flows.service import estimate_flow, local_run
 
-    with _progress("estimate") as bar:
+    with _progress("estimate") as bar, local_run():
         tasks: dict[str, int] = {}
 
         def progress(stage: str, done: int, total: int) -> None:
@@ -250,11 +250,11 @@ def apply(
 
     Runs as the Prefect flow descatter-apply.
     """
-    from descatter.flows.service import apply_flow, correction_config
+    from descatter.flows.service import apply_flow, correction_config, local_run
 
     # a bad store, config or option fails here, before the flow and the cluster start
     correction_config(store, config, mode=mode, prewhitening=prewhitening)
-    with _progress("apply") as bar:
+    with _progress("apply") as bar, local_run():
         task = bar.add_task("apply", total=None)
         result = apply_flow(str(store), _opt_path(config), solution=solution, cluster=cluster, workers=workers,
                             memory_limit=memory_limit, mode=mode, prewhitening=prewhitening,
@@ -400,10 +400,11 @@ def run(
     Files already in the store are skipped, so a run with a new swath does only
     its work, solves again and re-applies where station filters changed.
     """
-    from descatter.flows.service import run_flow
+    from descatter.flows.service import local_run, run_flow
 
-    out = run_flow(str(store), [str(f) for f in files], _opt_path(config), cluster=cluster,
-                   workers=workers, memory_limit=memory_limit)
+    with local_run():
+        out = run_flow(str(store), [str(f) for f in files], _opt_path(config), cluster=cluster,
+                       workers=workers, memory_limit=memory_limit)
     console.print(f"ingest: added {out['ingest']['added']}, skipped {out['ingest']['skipped']}; "
                   f"solution {out['estimate']['solution']}; corrected {out['apply']['recomputed']} of "
                   f"{out['apply']['traces']} traces{_kept(out['apply']['recomputed'], out['apply']['traces'])}")
@@ -434,10 +435,11 @@ def swath(
     from descatter.storage.store import SurveyStore
 
     SurveyStore.open(store)  # a bad store fails here, before Prefect starts
-    from descatter.flows.service import swath_flow
+    from descatter.flows.service import local_run, swath_flow
 
-    out = swath_flow(str(store), action, name, _opt_path(file), _opt_path(config), cluster=cluster,
-                     workers=workers, memory_limit=memory_limit)
+    with local_run():
+        out = swath_flow(str(store), action, name, _opt_path(file), _opt_path(config), cluster=cluster,
+                         workers=workers, memory_limit=memory_limit)
     r = out["removed"]
     what = f"removed {name} ({r['traces']} traces, {len(r['stats_keys'])} statistics keys)" if r["was_committed"] \
         else f"removed the leftovers of {name}"

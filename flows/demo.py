@@ -17,7 +17,7 @@ from typing import Iterator
 from descatter.flows.cluster import dask_client
 from descatter.flows.export import export_segy
 from descatter.flows.report import write_report
-from descatter.flows.service import apply_flow, estimate_flow, ingest_flow
+from descatter.flows.service import apply_flow, estimate_flow, ingest_flow, local_run
 from descatter.flows.stations_table import write_station_table
 from descatter.flows.summary import store_summary
 from descatter.flows.synth import write_synthetic_survey
@@ -50,7 +50,8 @@ def run_demo(out: str | Path, *, size: str = "demo", cluster: str = "local", wor
 
     console.print(f"[bold]2/6 ingest[/] into {store}")
     config = str(synth.config)
-    with progress("ingest") as bar, shared_cluster(cluster, workers=workers, memory_limit=memory_limit) as address:
+    with progress("ingest") as bar, shared_cluster(cluster, workers=workers, memory_limit=memory_limit) as address, \
+            local_run():
         tasks: dict[str, int] = {}
 
         def on_progress(part: str, done: int, total: int) -> None:

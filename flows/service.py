@@ -22,8 +22,9 @@ function is not JSON), and a deployment's runs leave it at None.
 from __future__ import annotations
 
 import os
+from contextlib import contextmanager
 from pathlib import Path
-from typing import Callable, Optional
+from typing import Callable, Iterator, Optional
 
 
 def prefect_environment() -> None:
@@ -47,6 +48,29 @@ from descatter.storage.config_file import config_for_store, load_config  # noqa:
 from descatter.tasks.config import SurveyConfig  # noqa: E402
 from descatter.storage.lock import StoreLock  # noqa: E402
 from descatter.tasks.errors import DescatterError  # noqa: E402
+
+
+
+@contextmanager
+def local_run() -> Iterator[None]:
+    """Prefect settings for flows that a command runs in this process.
+
+    With no Prefect server configured (``PREFECT_API_URL`` unset), Prefect
+    serves the runs from a temporary server that ends with the process. No
+    server is then left to watch the runs' heartbeats (they let a lasting
+    server detect crashed runs), so they are turned off: each flow waited up
+    to 1 s at its end for its heartbeat thread, which sleeps in 1 s steps (an
+    empty flow took 1.07 s with it and 0.10 s without, measured on Prefect
+    3.9.1). With a server configured, Prefect's own settings stand.
+    """
+    from prefect.settings import PREFECT_API_URL, PREFECT_FLOWS_HEARTBEAT_FREQUENCY, temporary_settings
+
+    if PREFECT_API_URL.value():
+        yield
+        return
+    with temporary_settings(updates={PREFECT_FLOWS_HEARTBEAT_FREQUENCY: None}):
+        yield
+
 
 # (part, done, total): a swath at ingest (traces); spectra, statistics, solve
 # at estimate; apply (traces)

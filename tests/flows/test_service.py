@@ -111,6 +111,23 @@ def test_a_bad_input_inside_a_flow_gives_the_message_without_a_traceback(prefect
     assert "nothere.sgy: no such SEG-Y file" in proc.stderr and "Traceback" not in proc.stderr
 
 
+def test_commands_send_heartbeats_only_to_a_lasting_server():
+    # Prefect's flow-run heartbeats (PREFECT_FLOWS_HEARTBEAT_FREQUENCY) let a server detect
+    # crashed runs; a command run without a server gets a temporary one that ends with it
+    from prefect.settings import PREFECT_API_URL, PREFECT_FLOWS_HEARTBEAT_FREQUENCY, temporary_settings
+
+    from descatter.flows.service import local_run
+
+    with temporary_settings(updates={PREFECT_API_URL: None, PREFECT_FLOWS_HEARTBEAT_FREQUENCY: 180}):
+        with local_run():
+            assert PREFECT_FLOWS_HEARTBEAT_FREQUENCY.value() is None
+        assert PREFECT_FLOWS_HEARTBEAT_FREQUENCY.value() == 180
+    with temporary_settings(updates={PREFECT_API_URL: "http://127.0.0.1:4200/api",
+                                     PREFECT_FLOWS_HEARTBEAT_FREQUENCY: 180}):
+        with local_run():
+            assert PREFECT_FLOWS_HEARTBEAT_FREQUENCY.value() == 180
+
+
 # -- runs killed and resumed -------------------------------------------------
 
 def _cli(api_url: str, *args: str, env: dict | None = None) -> subprocess.CompletedProcess:
