@@ -50,7 +50,6 @@ from descatter.storage.lock import StoreLock  # noqa: E402
 from descatter.tasks.errors import DescatterError  # noqa: E402
 
 
-
 @contextmanager
 def local_run() -> Iterator[None]:
     """Prefect settings for flows that a command runs in this process.

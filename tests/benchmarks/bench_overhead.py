@@ -147,7 +147,7 @@ def run(n_traces: int | None = None, size: str | None = "demo", workers: int = 2
             from descatter.tasks.cluster_profile import LocalProfile
 
             # (its workers import the stage modules as they start: flows/worker_setup.py)
-            with build_cluster(LocalProfile(workers=workers)) as lc:  # returns with its workers joined
+            with build_cluster(LocalProfile(workers=workers)) as lc:
                 running = tmp / "running.zarr"
                 start = time.time()
                 run_flow(str(running), files, str(synth.config), cluster=lc.scheduler_address)
