@@ -16,12 +16,11 @@ import logging
 import math
 import os
 import struct
-import threading
-import zlib
 from collections.abc import Mapping
 from dataclasses import dataclass
 
 import numpy as np
+from zlib_ng.zlib_ng import crc32
 
 from descatter.storage.ibm import ibm_to_float32, ibm_to_float64
 from descatter.storage.segy_headers import (
@@ -74,7 +73,6 @@ SUPPORTED_FORMATS: dict[int, tuple[str, int]] = {1: ("u4", 4), 2: ("i4", 4), 3: 
 _DEFAULT_COUNT = (115, 2)  # SEG-Y rev 1 trace header: samples in this trace
 _DEFAULT_INTERVAL = (117, 2)  # SEG-Y rev 1 trace header: sample interval (us)
 _CHECK_TRACES = 1 << 18  # traces per step of whole-file header checks (bounds memory)
-_THREAD_BYTES = 1 << 20  # blocks at least this big are hashed on a second thread
 _FEET = 0.3048  # international foot, exact by definition (1959)
 
 
@@ -385,22 +383,16 @@ def _trace_records(raw: np.ndarray, info: SegyInfo) -> np.ndarray:
     return raw.view(dtype)
 
 
-class _Digest(threading.Thread):
-    """CRC-32 of a buffer on a second thread (zlib releases the GIL on large buffers).
+def _digest(data: np.ndarray) -> bytes:
+    """Big-endian CRC-32 and byte count of a buffer.
 
     A CRC, not a cryptographic hash: the fingerprint detects accidental
-    change (a different or re-written file), not tampering, and at about
-    3 GB/s it costs the ingest little, where blake2b (about 0.45 GB/s here)
-    halved it.
+    change (a different or re-written file), not tampering. zlib-ng's CRC-32
+    gives the values of zlib's, at 26 GB/s here against zlib's 4.7 GB/s on
+    a 24 MB block (measured, one core); on a second thread, zlib's had
+    still cost a two-worker ingest about 9 ms of each 24 MB chunk's 44 ms.
     """
-
-    def __init__(self, data: np.ndarray) -> None:
-        super().__init__(daemon=True)
-        self.data = data
-        self.value = b""
-
-    def run(self) -> None:
-        self.value = struct.pack(">IQ", zlib.crc32(self.data), self.data.size)
+    return struct.pack(">IQ", crc32(data), data.size)
 
 
 def read_block(
@@ -417,8 +409,7 @@ def read_block(
     headers : uint8 [n, 240], the raw trace headers as in the file.
     digest : 12 bytes, big-endian CRC-32 and byte count of the raw bytes of
         the block (headers and samples), so a caller fingerprints
-        the file in the same pass; ``None`` when ``digest=False``. Hashing
-        runs on a second thread while the samples are decoded.
+        the file in the same pass; ``None`` when ``digest=False``.
 
     Raises
     ------
@@ -430,20 +421,8 @@ def read_block(
         ``start:stop`` outside ``0:info.n_traces``.
     """
     raw = _open_traces(info, start, stop)
-    hasher = _Digest(raw) if digest else None
-    threaded = hasher is not None and raw.size >= _THREAD_BYTES
-    if threaded:
-        hasher.start()
-    try:
-        samples, headers = _decode_records(info, raw, start, stop)
-    finally:
-        if threaded:
-            hasher.join()
-    if hasher is None:
-        return samples, headers, None
-    if not threaded:
-        hasher.run()
-    return samples, headers, hasher.value
+    samples, headers = _decode_records(info, raw, start, stop)
+    return samples, headers, _digest(raw) if digest else None
 
 
 def read_trace_headers(info: SegyInfo, start: int = 0, stop: int | None = None) -> np.ndarray:
