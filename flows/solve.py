@@ -132,19 +132,26 @@ def phase_block(pt: PairTotal, n_stations: int, method: str, columns: slice, ini
                       columns=columns, initial=initial)
 
 
-def kind_solution(kind: str, amp, pt: PairTotal, blocks: list, n: int, freqs: np.ndarray, config: SurveyConfig,
-                  dt_s: float, n_fft: int) -> tuple[dict, dict]:
-    """One station kind's response, filters and attributes from the amplitude
-    solution and its frequency blocks of phases; and the phase summary."""
-    amp_term = np.zeros((n, len(freqs)))
+def pair_amplitude_term(kind: str, amp, pt: PairTotal, n: int, n_freq: int) -> np.ndarray:
+    """One station kind's log-power terms from its pair magnitudes, with the
+    log-power solution as the prior: float64 [n, n_freq]. Needs no phases, so
+    it runs while the phase blocks do."""
+    prior = np.zeros((n, n_freq))
     solved = amp.receiver if kind == "receiver" else amp.source
-    amp_term[: len(solved)] = solved
+    prior[: len(solved)] = solved
     # The spectral shapes from the pair magnitudes, which noise does not bias the way it biases
     # log |D|^2; the log-power terms hold what the pairs leave open (pair_amplitude_solve notes).
     p = pt.sums
-    amp_term = pair_amplitude_solve(p.pairs, p.cross, p.count, prior=amp_term)
+    return pair_amplitude_solve(p.pairs, p.cross, p.count, prior=prior)
+
+
+def kind_solution(kind: str, amp_term: np.ndarray, pt: PairTotal, blocks: list, n: int, freqs: np.ndarray,
+                  config: SurveyConfig, dt_s: float, n_fft: int) -> tuple[dict, dict]:
+    """One station kind's response, filters and attributes from its
+    amplitude terms (:func:`pair_amplitude_term`) and its frequency blocks
+    of phases; and the phase summary."""
     phase = concat_phase_solutions(blocks)
-    arrays = station_attributes(kind, amp_term, phase, p, n, freqs, config, dt_s, n_fft)
+    arrays = station_attributes(kind, amp_term, phase, pt.sums, n, freqs, config, dt_s, n_fft)
     arrays[f"{kind}_phase_residual"] = phase.residual
     return arrays, {"components": int(phase.n_components), "residual": float(np.mean(phase.residual))}
 
@@ -298,6 +305,11 @@ def solve_stations(store: SurveyStore, config: SurveyConfig, freqs: np.ndarray, 
     amp = run("amplitude", amplitude_solve, lp, terms=terms)
     pairs = {kind: run(f"{kind}_pairs", prepared_pairs, path, f"{kind}_pairs", keys.swaths if kind == "receiver"
                        else keys.source, n_freq, bin_hz, est.smoothing_hz) for kind in ("receiver", "source")}
+    # submitted before the phase blocks, so each starts as soon as its pair sums are made
+    # (it had run inside the filters task, after every block: the receivers' 0.3 s at 502,400
+    # traces, while the other worker waited)
+    amp_terms = {kind: run(f"{kind}_amplitude", pair_amplitude_term, kind, amp, pairs[kind], sizes[kind], n_freq)
+                 for kind in ("receiver", "source")}
     kinds = {}
     for kind in ("receiver", "source"):
         initial = warm.get(kind)
@@ -307,8 +319,8 @@ def solve_stations(store: SurveyStore, config: SurveyConfig, freqs: np.ndarray, 
         # pair sums were made (110 MB at 502,400 traces), one worker idle for seconds.
         phases = [run(f"{kind}_phase", phase_block, pairs[kind], sizes[kind], method, b, initial, spread=i)
                   for i, b in enumerate(blocks)]
-        kinds[kind] = run(f"{kind}_filters", kind_solution, kind, amp, pairs[kind], phases, sizes[kind], freqs,
-                          config, dt, n_fft)
+        kinds[kind] = run(f"{kind}_filters", kind_solution, kind, amp_terms[kind], pairs[kind], phases, sizes[kind],
+                          freqs, config, dt, n_fft)
     wanted = {"kinds": kinds, "amplitude": small(_amplitude_summary, amp),
               "noise": {k: small(_noise_totals, v) for k, v in pairs.items()},
               "seconds": [small(_seconds, f) for _, f in parts] if runlog is not None else []}
